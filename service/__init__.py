@@ -1,0 +1,3 @@
+"""lytestream: FHIR lab results in, FHIR Flags out."""
+
+__version__ = "0.1.0"

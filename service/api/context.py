@@ -1,0 +1,31 @@
+"""What every route needs, built once per process and reached through FastAPI dependencies."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Annotated
+
+from fastapi import Depends, Request
+
+from service.clock import Clock
+from service.config import Settings
+from service.db.engine import Database
+from service.ingest import Ingestor
+
+__all__ = ["AppContext", "ContextDep"]
+
+
+@dataclass
+class AppContext:
+    settings: Settings
+    db: Database
+    clock: Clock
+    ingestor: Ingestor
+
+
+def _context(request: Request) -> AppContext:
+    ctx: AppContext = request.app.state.ctx
+    return ctx
+
+
+ContextDep = Annotated[AppContext, Depends(_context)]

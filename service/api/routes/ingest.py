@@ -1,0 +1,129 @@
+"""Writes: POST /fhir (Bundle), POST and conditional PUT of Observation and MedicationAdministration."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.concurrency import run_in_threadpool
+from fastapi.responses import Response
+
+from service.api.context import ContextDep
+from service.api.fhir_io import fhir_response, prefer_return, read_json
+from service.db.reads import read_version
+from service.errors import Issue, RequestRejected
+from service.fhir.render import operation_outcome, response_bundle
+from service.ingest import EntryRequest, EntryResult
+
+router = APIRouter()
+
+_BUNDLE_TYPES = ("transaction", "batch")
+
+
+@router.post("/fhir")
+async def post_bundle(request: Request, ctx: ContextDep) -> Response:
+    """A transaction (all or nothing) or batch (entry by entry) Bundle."""
+    body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
+    entries, kind = _bundle_entries(body, ctx.settings.max_bundle_entries)
+    ingest = ctx.ingestor.transaction if kind == "transaction" else ctx.ingestor.batch
+    results = await run_in_threadpool(ingest, entries, raw=raw)
+    want = prefer_return(request, "minimal")
+    bundle = response_bundle(kind, results, representation=want == "representation", now=ctx.clock.now())
+    return fhir_response(bundle)
+
+
+def _bundle_entries(body: Any, max_entries: int) -> tuple[list[EntryRequest], str]:
+    if not isinstance(body, dict) or body.get("resourceType") != "Bundle":
+        rtype = body.get("resourceType") if isinstance(body, dict) else None
+        raise RequestRejected([Issue("invalid", f"POST [base] takes a Bundle, not {rtype!r}", ("Bundle",))])
+    kind = body.get("type")
+    if kind not in _BUNDLE_TYPES:
+        raise RequestRejected([Issue("not-supported", f"Bundle.type {kind!r} is not supported here; send a "
+                                     "transaction or a batch", ("Bundle.type",))])
+    raw_entries = body.get("entry") or []
+    if not isinstance(raw_entries, list):
+        raise RequestRejected([Issue("structure", "Bundle.entry must be a list", ("Bundle.entry",))])
+    if len(raw_entries) > max_entries:
+        raise RequestRejected([Issue("too-costly", f"Bundle has {len(raw_entries)} entries; the limit is "
+                                     f"{max_entries}", ("Bundle.entry",), status=413)])
+    entries: list[EntryRequest] = []
+    issues: list[Issue] = []
+    for i, e in enumerate(raw_entries):
+        root = f"Bundle.entry[{i}]"
+        request = e.get("request") if isinstance(e, dict) else None
+        if not isinstance(request, dict) or not request.get("method"):
+            issues.append(Issue("required", "entry.request with method and url is required in a "
+                                f"{kind} (bdl-3)", (f"{root}.request",)))
+            continue
+        entries.append(EntryRequest(
+            root=f"{root}.resource",
+            resource=e.get("resource"),
+            method=str(request.get("method")),
+            url=request.get("url"),
+            if_none_exist=request.get("ifNoneExist"),
+            full_url=e.get("fullUrl"),
+        ))
+    if issues:
+        raise RequestRejected(issues)
+    return entries, kind
+
+
+async def _write(request: Request, ctx: ContextDep, rtype: str, method: str) -> Response:
+    body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
+    if not isinstance(body, dict) or body.get("resourceType") != rtype:
+        got = body.get("resourceType") if isinstance(body, dict) else None
+        raise RequestRejected([Issue("invalid", f"this endpoint takes a {rtype}, not {got!r}",
+                                     (f"{rtype}.resourceType",))])
+    url = rtype
+    if method == "PUT":
+        query = request.url.query
+        if not query:
+            raise RequestRejected([Issue("not-supported", f"lytestream assigns ids: use PUT {rtype}?identifier="
+                                         "system|value")])
+        url = f"{rtype}?{query}"
+    entry = EntryRequest(root=rtype, resource=body, method=method, url=url,
+                         if_none_exist=request.headers.get("if-none-exist"))
+    result: EntryResult = await run_in_threadpool(
+        ctx.ingestor.single, entry, raw=raw, interaction="create" if method == "POST" else "update")
+    if result.body is None and result.location and prefer_return(request, "representation") == "representation":
+        # Nothing new was written (a resend): answer with the version held.
+        rid, version = result.location.split("/")[1], result.version_id
+        with ctx.db.session() as session:
+            result.body = read_version(session=session, resource_type=rtype, rid=rid, version=version)
+    return _single_response(request, result, ctx.settings.base_url)
+
+
+def _single_response(request: Request, result: EntryResult, base_url: str) -> Response:
+    headers: dict[str, str] = {}
+    if result.location:
+        headers["Location"] = f"{base_url}/{result.location}"
+    if result.version_id is not None:
+        headers["ETag"] = f'W/"{result.version_id}"'
+    if result.last_modified is not None:
+        headers["Last-Modified"] = result.last_modified.strftime("%a, %d %b %Y %H:%M:%S GMT")
+    want = prefer_return(request, "representation")
+    if want == "minimal" or (want == "representation" and not result.body and not result.issues):
+        return fhir_response(None, result.status, headers)
+    if want == "OperationOutcome" or not result.body:
+        return fhir_response(operation_outcome(result.issues), result.status, headers)
+    return fhir_response(result.body, result.status, headers)
+
+
+@router.post("/fhir/Observation")
+async def create_observation(request: Request, ctx: ContextDep) -> Response:
+    return await _write(request, ctx, "Observation", "POST")
+
+
+@router.put("/fhir/Observation")
+async def update_observation(request: Request, ctx: ContextDep) -> Response:
+    return await _write(request, ctx, "Observation", "PUT")
+
+
+@router.post("/fhir/MedicationAdministration")
+async def create_administration(request: Request, ctx: ContextDep) -> Response:
+    return await _write(request, ctx, "MedicationAdministration", "POST")
+
+
+@router.put("/fhir/MedicationAdministration")
+async def update_administration(request: Request, ctx: ContextDep) -> Response:
+    return await _write(request, ctx, "MedicationAdministration", "PUT")

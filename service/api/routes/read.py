@@ -1,0 +1,123 @@
+"""Reads an integration engineer uses to see what arrived: read, vread, history, Observation search."""
+
+from __future__ import annotations
+
+from urllib.parse import urlencode
+
+import orjson
+from fastapi import APIRouter, Request
+from fastapi.concurrency import run_in_threadpool
+from fastapi.responses import Response
+
+from service.api.context import ContextDep
+from service.api.fhir_io import fhir_response
+from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
+from service.errors import Issue, NotFound, RequestRejected
+from service.fhir.render import fhir_instant, searchset, status_line
+from service.fhir.search import date_bounds
+
+router = APIRouter()
+
+_READABLE = ("Observation", "MedicationAdministration")
+_OBS_PARAMS = {"patient", "patient:identifier", "subject", "code", "date", "_count", "_offset", "_sort", "_format"}
+
+
+@router.get("/fhir/{rtype}/{rid}")
+def read(rtype: str, rid: str, ctx: ContextDep) -> Response:
+    return _vread(rtype, rid, None, ctx)
+
+
+@router.get("/fhir/{rtype}/{rid}/_history/{vid}")
+def vread(rtype: str, rid: str, vid: str, ctx: ContextDep) -> Response:
+    if not vid.isdigit():
+        raise NotFound(f"{rtype}/{rid} has no version {vid!r}")
+    return _vread(rtype, rid, int(vid), ctx)
+
+
+def _vread(rtype: str, rid: str, vid: int | None, ctx: ContextDep) -> Response:
+    _readable(rtype)
+    with ctx.db.session() as session:
+        body = read_version(session=session, resource_type=rtype, rid=rid, version=vid)
+    if body is None:
+        raise NotFound(f"{rtype}/{rid}" + (f"/_history/{vid}" if vid else "") + " is not held here")
+    meta = orjson.loads(body)["meta"]
+    return fhir_response(body, headers={"ETag": f'W/"{meta["versionId"]}"'})
+
+
+@router.get("/fhir/{rtype}/{rid}/_history")
+def instance_history(rtype: str, rid: str, ctx: ContextDep) -> Response:
+    _readable(rtype)
+    with ctx.db.session() as session:
+        versions = history(session=session, resource_type=rtype, rid=rid)
+    if not versions:
+        raise NotFound(f"{rtype}/{rid} is not held here")
+    base = ctx.settings.base_url
+    entries = [
+        {
+            "fullUrl": f"{base}/{rtype}/{rid}",
+            "resource": orjson.loads(body),
+            "request": {"method": "POST" if vid == 1 else "PUT", "url": rtype if vid == 1 else f"{rtype}/{rid}"},
+            "response": {"status": status_line(201 if vid == 1 else 200), "etag": f'W/"{vid}"',
+                         "lastModified": fhir_instant(when)},
+        }
+        for vid, when, body in versions
+    ]
+    return fhir_response({"resourceType": "Bundle", "type": "history", "total": len(entries), "entry": entries})
+
+
+@router.get("/fhir/Observation")
+async def search(request: Request, ctx: ContextDep) -> Response:
+    params = request.query_params
+    unknown = sorted(set(params) - _OBS_PARAMS)
+    if unknown:
+        raise RequestRejected([Issue("not-supported", f"search parameter(s) not supported: {', '.join(unknown)}; "
+                                     f"supported: {', '.join(sorted(_OBS_PARAMS - {'_format'}))}")])
+    count = _int(params.get("_count"), ctx.settings.page_size_default, "_count")
+    count = min(max(count, 1), ctx.settings.page_size_max)
+    offset = max(_int(params.get("_offset"), 0, "_offset"), 0)
+    sort = params.get("_sort", "-date")
+    if sort.lstrip("-") not in ("date", "_lastUpdated"):
+        raise RequestRejected([Issue("not-supported", "_sort supports date, -date, _lastUpdated, -_lastUpdated")])
+    low, high = date_bounds(params.getlist("date"))
+    codes = [c.split("|")[-1] for v in params.getlist("code") for c in v.split(",")]
+    alias = _patient_alias(params.get("patient") or params.get("subject"), params.get("patient:identifier"))
+
+    def run() -> tuple[list[bytes], int]:
+        with ctx.db.session() as session:
+            key = patient_key_for(session=session, alias=alias) if alias else None
+            if alias and key is None:
+                return [], 0
+            q = ObservationQuery(patient_key=key, codes=codes, date_from=low, date_to=high, sort=sort,
+                                 count=count, offset=offset)
+            return search_observations(session=session, q=q)
+
+    rows, total = await run_in_threadpool(run)
+    base = ctx.settings.base_url
+    query = [(k, v) for k, v in params.multi_items() if k != "_offset"]
+    self_url = f"{base}/Observation?{urlencode([*query, ('_offset', str(offset))])}"
+    next_url = (f"{base}/Observation?{urlencode([*query, ('_offset', str(offset + count))])}"
+                if offset + count < total else None)
+    bundle = searchset([orjson.loads(r) for r in rows], base=base, self_url=self_url, next_url=next_url,
+                       total=total, now=ctx.clock.now())
+    return fhir_response(bundle)
+
+
+def _patient_alias(reference: str | None, identifier: str | None) -> str | None:
+    if identifier:
+        return f"id:{identifier}"
+    if reference:
+        return f"ref:{reference}" if "/" in reference else f"ref:Patient/{reference}"
+    return None
+
+
+def _int(value: str | None, default: int, name: str) -> int:
+    if value is None:
+        return default
+    if not value.lstrip("-").isdigit():
+        raise RequestRejected([Issue("value", f"{name} must be a whole number, not {value!r}")])
+    return int(value)
+
+
+def _readable(rtype: str) -> None:
+    if rtype not in _READABLE:
+        raise RequestRejected([Issue("not-supported", f"{rtype} is not served here", status=404)])

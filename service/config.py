@@ -1,0 +1,59 @@
+"""The one settings object. Nothing else in the package reads the environment."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+__all__ = ["Settings", "get_settings"]
+
+
+class Settings(BaseSettings):
+    """Deployment settings, from ``LYTESTREAM_*`` environment variables or CLI options."""
+
+    model_config = SettingsConfigDict(env_prefix="LYTESTREAM_", extra="forbid")
+
+    data_dir: Path = Field(default=Path("./lytestream-data"), description="where the SQLite file lives")
+    database_url: str | None = Field(
+        default=None, description="SQLAlchemy URL; default sqlite:///<data_dir>/lytestream.db"
+    )
+    base_url: str = Field(default="http://localhost:8080/fhir", description="public FHIR base URL")
+    lab_timezone: str | None = Field(
+        default=None,
+        description="IANA zone of the lab clock; when set, date-times without an offset are read in it",
+    )
+    max_bundle_entries: int = Field(default=1000, gt=0)
+    max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0)
+    lookback_hours: float = Field(default=72.0, gt=0, description="how far back the timeline reaches")
+    page_size_default: int = Field(default=50, gt=0)
+    page_size_max: int = Field(default=500, gt=0)
+    policy_file: Path | None = Field(default=None, description="site policy TOML; default: built-in")
+
+    @field_validator("lab_timezone")
+    @classmethod
+    def _known_zone(cls, value: str | None) -> str | None:
+        if value is not None:
+            try:
+                ZoneInfo(value)
+            except (ZoneInfoNotFoundError, ValueError) as exc:
+                raise ValueError(f"unknown IANA time zone {value!r}") from exc
+        return value
+
+    @property
+    def resolved_database_url(self) -> str:
+        if self.database_url:
+            return self.database_url
+        return f"sqlite:///{(self.data_dir / 'lytestream.db').as_posix()}"
+
+    @property
+    def is_sqlite(self) -> bool:
+        return self.resolved_database_url.startswith("sqlite")
+
+
+@lru_cache(maxsize=1)
+def get_settings() -> Settings:
+    return Settings()

@@ -1,0 +1,78 @@
+"""Reads for the audit side of ingest: one version, a history, an Observation search page."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
+
+from sqlalchemy import and_, func, select
+from sqlmodel import Session
+
+from service.db.tables import FhirVersion, ObservationRecord, PatientAlias
+
+__all__ = ["ObservationQuery", "history", "patient_key_for", "read_version", "search_observations"]
+
+_V = FhirVersion.__table__  # type: ignore[attr-defined]
+_OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
+_ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
+
+
+def read_version(*, session: Session, resource_type: str, rid: str, version: int | None = None) -> bytes | None:
+    """The resource as served at ``version`` (newest when None), or None."""
+    stmt = select(_V.c.resource).where(_V.c.resource_type == resource_type, _V.c.id == rid)
+    stmt = stmt.where(_V.c.version_id == version) if version is not None else stmt.order_by(_V.c.version_id.desc())
+    row = session.execute(stmt.limit(1)).first()
+    return bytes(row[0]) if row else None
+
+
+def history(*, session: Session, resource_type: str, rid: str) -> list[tuple[int, datetime, bytes]]:
+    """Every version, newest first."""
+    rows = session.execute(
+        select(_V.c.version_id, _V.c.last_updated, _V.c.resource)
+        .where(_V.c.resource_type == resource_type, _V.c.id == rid)
+        .order_by(_V.c.version_id.desc())
+    )
+    return [(r.version_id, r.last_updated, bytes(r.resource)) for r in rows]
+
+
+def patient_key_for(*, session: Session, alias: str) -> str | None:
+    return session.execute(select(_ALIAS.c.patient_key).where(_ALIAS.c.alias == alias)).scalar_one_or_none()
+
+
+@dataclass(frozen=True)
+class ObservationQuery:
+    patient_key: str | None = None
+    codes: Sequence[str] = ()
+    date_from: datetime | None = None  # inclusive
+    date_to: datetime | None = None  # exclusive
+    sort: str = "-date"
+    count: int = 50
+    offset: int = 0
+
+
+def search_observations(*, session: Session, q: ObservationQuery) -> tuple[list[bytes], int]:
+    """One page of current Observations as served, and the total number of matches."""
+    conds = []
+    if q.patient_key is not None:
+        conds.append(_OBS.c.patient_key == q.patient_key)
+    if q.codes:
+        conds.append(_OBS.c.loinc.in_(list(q.codes)))
+    if q.date_from is not None:
+        conds.append(_OBS.c.effective >= q.date_from)
+    if q.date_to is not None:
+        conds.append(_OBS.c.effective < q.date_to)
+    where = and_(*conds) if conds else True
+    total = session.execute(select(func.count()).select_from(_OBS).where(where)).scalar_one()
+    column = {"date": _OBS.c.effective, "_lastUpdated": _OBS.c.last_updated}[q.sort.lstrip("-")]
+    order = column.desc() if q.sort.startswith("-") else column.asc()
+    rows = session.execute(
+        select(_V.c.resource)
+        .select_from(_OBS.join(_V, and_(_V.c.resource_type == "Observation", _V.c.id == _OBS.c.id,
+                                        _V.c.version_id == _OBS.c.version_id)))
+        .where(where)
+        .order_by(order, _OBS.c.id)
+        .limit(q.count)
+        .offset(q.offset)
+    )
+    return [bytes(r[0]) for r in rows], int(total)

@@ -1,0 +1,129 @@
+"""SQLModel tables. One row per current resource, one per version, the raw requests beside them.
+
+Patient data is kept to what identity needs: references and identifiers, never names.
+"""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Any
+
+from sqlalchemy import Column, DateTime, Index, LargeBinary, UniqueConstraint
+from sqlalchemy.types import TypeDecorator
+from sqlmodel import Field, SQLModel
+
+__all__ = [
+    "FhirVersion",
+    "InsulinRecord",
+    "ObservationRecord",
+    "PatientAlias",
+    "ReceivedRequest",
+]
+
+
+class UTCDateTime(TypeDecorator[datetime]):
+    """Aware UTC in and out; SQLite stores no zone, so it is restored on the way out."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Any) -> datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError("naive datetime refused: store aware UTC")
+        return value.astimezone(UTC)
+
+    def process_result_value(self, value: datetime | None, dialect: Any) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+def _utc(**kw: object) -> Any:
+    return Field(sa_column=Column(UTCDateTime(), **kw))  # type: ignore[call-overload]
+
+
+class PatientAlias(SQLModel, table=True):
+    """Every way a feed names a patient, mapped to one internal key.
+
+    ``alias`` is ``ref:<literal reference>`` or ``id:<system>|<value>``.
+    """
+
+    __tablename__ = "patient_alias"
+    alias: str = Field(primary_key=True)
+    patient_key: str = Field(index=True)
+
+
+class ReceivedRequest(SQLModel, table=True):
+    """The exact bytes of a request that changed something: audit and replay read them."""
+
+    __tablename__ = "received_request"
+    id: int | None = Field(default=None, primary_key=True)
+    received_at: datetime = _utc(nullable=False)
+    interaction: str  # "transaction", "batch", "create", "update"
+    body: bytes = Field(sa_column=Column(LargeBinary, nullable=False))
+
+
+class ObservationRecord(SQLModel, table=True):
+    """The current version of a watched Observation, with its normalised value."""
+
+    __tablename__ = "observation"
+    __table_args__ = (
+        UniqueConstraint("identifier_system", "identifier_value", name="uq_observation_identifier"),
+        Index("ix_observation_patient_effective", "patient_key", "effective"),
+    )
+    id: str = Field(primary_key=True)
+    identifier_system: str
+    identifier_value: str
+    patient_key: str
+    subject_reference: str  # the reference as the sender wrote it
+    loinc: str = Field(index=True)
+    analyte: str
+    specimen: str
+    calculated: bool = False
+    status: str
+    value: float | None = None  # canonical unit; None when not numeric
+    comparator: str | None = None
+    effective: datetime = _utc(nullable=False)
+    issued: datetime | None = _utc(nullable=True)
+    encounter: str | None = None
+    replaces: str | None = None  # "Observation/<id>" or "id:<system>|<value>" of a result this one replaces
+    version_id: int = 1
+    last_updated: datetime = _utc(nullable=False)
+    content_hash: str
+
+
+class InsulinRecord(SQLModel, table=True):
+    """The current version of a MedicationAdministration whose medication policy counts as insulin."""
+
+    __tablename__ = "insulin_administration"
+    __table_args__ = (
+        UniqueConstraint("identifier_system", "identifier_value", name="uq_insulin_identifier"),
+        Index("ix_insulin_patient_start", "patient_key", "start"),
+    )
+    id: str = Field(primary_key=True)
+    identifier_system: str
+    identifier_value: str
+    patient_key: str
+    subject_reference: str
+    status: str
+    medication: str
+    route: str | None = None
+    start: datetime = _utc(nullable=False)
+    end: datetime | None = _utc(nullable=True)
+    version_id: int = 1
+    last_updated: datetime = _utc(nullable=False)
+    content_hash: str
+
+
+class FhirVersion(SQLModel, table=True):
+    """Every version of every resource we serve, as served (``_history`` and vread read this)."""
+
+    __tablename__ = "fhir_version"
+    resource_type: str = Field(primary_key=True)
+    id: str = Field(primary_key=True)
+    version_id: int = Field(primary_key=True)
+    last_updated: datetime = _utc(nullable=False)
+    request_id: int | None = None  # ReceivedRequest that carried it
+    resource: bytes = Field(sa_column=Column(LargeBinary, nullable=False))  # FHIR JSON as served

@@ -1,0 +1,73 @@
+"""Values derived from more than one result: glucose-corrected sodium, osmolalities, pairing.
+
+All inputs in canonical units (mmol/L; osmolality mOsm/kg). Pure arithmetic, no I/O.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from datetime import timedelta
+
+from service.domain.values import LabResult
+
+__all__ = [
+    "GLUCOSE_MOLAR_MASS",
+    "REFERENCE_GLUCOSE_MMOL",
+    "calculated_osmolality",
+    "corrected_sodium",
+    "effective_osmolality",
+    "pair_nearest",
+]
+
+GLUCOSE_MOLAR_MASS = 180.156  # g/mol, C6H12O6 from IUPAC conventional atomic weights
+# The correction is defined per 100 mg/dL above 100 mg/dL; 100 mg/dL = 1000 mg/L ÷ 180.156 g/mol.
+REFERENCE_GLUCOSE_MMOL = 1000.0 / GLUCOSE_MOLAR_MASS  # 5.55074 mmol/L
+
+
+def corrected_sodium(sodium: float, glucose: float, factor: float = 1.6) -> float:
+    """Sodium corrected for the water that hyperglycaemia draws out of cells.
+
+    SI form of Na + F × (glucose mg/dL − 100)/100: F mmol/L per 5.55074 mmol/L of glucose above
+    5.55074. F = 1.6 (Katz 1973) or 2.4 (Hillier 1999). Below the reference glucose no correction
+    is made: the formula describes dilution by excess glucose, not a deficit.
+    """
+    excess = max(glucose - REFERENCE_GLUCOSE_MMOL, 0.0)
+    return sodium + factor * excess / REFERENCE_GLUCOSE_MMOL
+
+
+def effective_osmolality(
+    sodium: float | None, glucose: float | None, measured: float | None = None
+) -> float | None:
+    """Tonicity: the measured osmolality when there is one, else 2·Na + glucose (urea left out,
+    since it crosses cell membranes freely). None when neither can be had."""
+    if measured is not None:
+        return measured
+    if sodium is None or glucose is None:
+        return None
+    return 2.0 * sodium + glucose
+
+
+def calculated_osmolality(sodium: float, glucose: float, urea: float) -> float:
+    """Calculated serum osmolality, SI form: 2·Na + glucose + urea, all mmol/L."""
+    return 2.0 * sodium + glucose + urea
+
+
+def pair_nearest(
+    anchor: LabResult, candidates: Iterable[LabResult], window: timedelta
+) -> LabResult | None:
+    """The candidate drawn nearest in time to ``anchor``, if within ``window`` (inclusive).
+
+    Ties go to the earlier draw, then the lower observation id, so the pairing never depends on
+    the order results arrived in. Censored and valueless candidates are never paired.
+    """
+    best: tuple[timedelta, object, str, LabResult] | None = None
+    for candidate in candidates:
+        if candidate.value is None or candidate.comparator is not None:
+            continue
+        gap = abs(candidate.effective - anchor.effective)
+        if gap > window:
+            continue
+        key = (gap, candidate.effective, candidate.observation_id, candidate)
+        if best is None or key[:3] < best[:3]:
+            best = key
+    return None if best is None else best[3]

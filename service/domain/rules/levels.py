@@ -1,0 +1,125 @@
+"""Dangerous levels: the most recent result of an analyte at or beyond a critical limit.
+
+Both limits are inclusive (a result equal to the limit is dangerous), as the site-policy defaults are
+written ("<=120", ">=160"). For each analyte and side, the latest result that proves something
+decides: a newer result back inside the limit clears the finding. A censored result counts only
+when its bound proves the side in question (">33.3 mmol/L" proves a high glucose; "<1.1" a low
+one); one that proves nothing is passed over. Calculated results (e.g. a reported calculated
+osmolality) are not measurements and are left out. Decision support only.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from datetime import timedelta
+
+from service.domain.derived import corrected_sodium, pair_nearest
+from service.domain.findings import Finding, Priority, Rule
+from service.domain.rules.series import (
+    LAB_BLOOD,
+    UNITS,
+    Verdict,
+    at_or_above,
+    at_or_below,
+    fmt,
+    trailing_run_start,
+)
+from service.domain.values import Analyte, LabResult, Specimen
+from service.policy.model import LevelLimit, Policy
+
+__all__ = ["evaluate_levels"]
+
+_RULES = {
+    (Analyte.SODIUM, "low"): Rule.SODIUM_CRITICAL_LOW,
+    (Analyte.SODIUM, "high"): Rule.SODIUM_CRITICAL_HIGH,
+    (Analyte.POTASSIUM, "low"): Rule.POTASSIUM_CRITICAL_LOW,
+    (Analyte.POTASSIUM, "high"): Rule.POTASSIUM_CRITICAL_HIGH,
+    (Analyte.GLUCOSE, "low"): Rule.GLUCOSE_CRITICAL_LOW,
+    (Analyte.GLUCOSE, "high"): Rule.GLUCOSE_CRITICAL_HIGH,
+    (Analyte.OSMOLALITY, "low"): Rule.OSMOLALITY_CRITICAL_LOW,
+    (Analyte.OSMOLALITY, "high"): Rule.OSMOLALITY_CRITICAL_HIGH,
+}
+
+_SPECIMEN_WORDS = {
+    Specimen.SERUM_PLASMA: "",
+    Specimen.WHOLE_BLOOD: " (whole blood)",
+    Specimen.POINT_OF_CARE: " (point-of-care)",
+}
+
+_Judge = Callable[[LabResult, float], Verdict]
+
+
+def evaluate_levels(results: Sequence[LabResult], policy: Policy, patient: str) -> list[Finding]:
+    """Critical-level findings for one patient's time-ordered, urine-free results."""
+    findings: list[Finding] = []
+    for analyte in (Analyte.SODIUM, Analyte.POTASSIUM, Analyte.GLUCOSE, Analyte.OSMOLALITY):
+        watched = [
+            (r, limit)
+            for r in results
+            if r.analyte is analyte
+            and not r.calculated
+            and (limit := policy.level_for(analyte, r.specimen)) is not None
+        ]
+        for side, judge in (("low", at_or_below), ("high", at_or_above)):
+            finding = _side(watched, side, judge, analyte, results, policy, patient)
+            if finding is not None:
+                findings.append(finding)
+    return findings
+
+
+def _side(
+    watched: Sequence[tuple[LabResult, LevelLimit]],
+    side: str,
+    judge: _Judge,
+    analyte: Analyte,
+    results: Sequence[LabResult],
+    policy: Policy,
+    patient: str,
+) -> Finding | None:
+    informative = [
+        (r, limit, verdict)
+        for r, limit in watched
+        if (verdict := judge(r, limit.low if side == "low" else limit.high)) is not Verdict.UNKNOWN
+    ]
+    start = trailing_run_start(len(informative), lambda i: informative[i][2] is Verdict.DANGER)
+    if start is None:
+        return None
+    result, limit, _ = informative[-1]
+    bound = limit.low if side == "low" else limit.high
+    unit = UNITS[analyte]
+    shown = f"{result.comparator or ''}{fmt(result.value or 0.0)}"
+    sentence = (
+        f"{analyte.value.capitalize()}{_SPECIMEN_WORDS[result.specimen]} {shown} {unit}, "
+        f"at or {'below' if side == 'low' else 'above'} the critical limit of {fmt(bound)} {unit}"
+    )
+    numbers = {"value": result.value or 0.0, "limit": bound}
+    evidence = [result.reference]
+    if analyte is Analyte.SODIUM and result.value is not None:
+        glucose = pair_nearest(
+            result,
+            [r for r in results if r.analyte is Analyte.GLUCOSE and r.specimen in LAB_BLOOD],
+            timedelta(minutes=policy.derived.pairing_minutes),
+        )
+        if glucose is not None and glucose.value is not None:
+            if glucose.value >= policy.derived.show_corrected_sodium_from_glucose:
+                corrected = corrected_sodium(
+                    result.value, glucose.value, policy.derived.sodium_glucose_factor
+                )
+                sentence += (
+                    f"; glucose-corrected sodium {fmt(corrected)} mmol/L "
+                    f"with glucose {fmt(glucose.value)} mmol/L"
+                )
+                numbers |= {"corrected_sodium": corrected, "glucose": glucose.value}
+                evidence.append(glucose.reference)
+    if result.specimen is Specimen.POINT_OF_CARE:
+        sentence += "; confirm with a laboratory sample"
+    return Finding.of(
+        rule=_RULES[(analyte, side)],
+        patient=patient,
+        priority=Priority.HIGH,
+        evidence=evidence,
+        numbers=numbers,
+        sentence=sentence + ".",
+        onset=informative[start][0].effective,
+        encounter=result.encounter,
+    )

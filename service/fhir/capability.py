@@ -1,0 +1,71 @@
+"""The CapabilityStatement: what this server really does, and nothing it does not."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from service import __version__
+from service.fhir.render import CAUTION, fhir_instant
+
+__all__ = ["capability_statement"]
+
+
+def _search(name: str, kind: str, doc: str) -> dict[str, str]:
+    return {"name": name, "type": kind, "documentation": doc}
+
+
+def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | None) -> dict[str, Any]:
+    ingest = {
+        "versioning": "versioned",
+        "readHistory": True,
+        "updateCreate": False,
+        "conditionalCreate": True,
+        "conditionalUpdate": True,
+        "conditionalDelete": "not-supported",
+    }
+    zone = (f" Date-times without an offset are read in {lab_timezone}." if lab_timezone
+            else " Date-times without a UTC offset are refused.")
+    return {
+        "resourceType": "CapabilityStatement",
+        "status": "active",
+        "date": fhir_instant(now),
+        "publisher": "lytestream",
+        "kind": "instance",
+        "software": {"name": "lytestream", "version": __version__},
+        "implementation": {"description": "lytestream lab-result safety service. " + CAUTION, "url": base_url},
+        "fhirVersion": "4.0.1",
+        "format": ["application/fhir+json", "json"],
+        "rest": [
+            {
+                "mode": "server",
+                "documentation": (
+                    "Observations of the watched LOINC codes (sodium, potassium, glucose, osmolality, urea) and "
+                    "insulin MedicationAdministrations are stored; other resources in a Bundle are acknowledged "
+                    "and not stored. Patient entries only link identifiers. Creates and updates are keyed on "
+                    "the business identifier: a resend is idempotent." + zone
+                ),
+                "interaction": [{"code": "transaction"}, {"code": "batch"}],
+                "resource": [
+                    {
+                        "type": "Observation",
+                        "interaction": [{"code": c} for c in ("read", "vread", "history-instance", "create",
+                                                              "update", "search-type")],
+                        **ingest,
+                        "searchParam": [
+                            _search("patient", "reference", "Patient/id or identifier-based reference"),
+                            _search("code", "token", "LOINC code, system|code or code"),
+                            _search("date", "date", "effective time; prefixes eq, ge, gt, le, lt"),
+                            _search("_count", "number", "page size"),
+                        ],
+                    },
+                    {
+                        "type": "MedicationAdministration",
+                        "interaction": [{"code": c} for c in ("read", "vread", "history-instance", "create",
+                                                              "update")],
+                        **ingest,
+                    },
+                ],
+            }
+        ],
+    }

@@ -1,0 +1,336 @@
+"""Validated FHIR resource dicts → plain incoming records, with the checks the models do not make.
+
+fhir.resources does not enforce code values or invariants, and lytestream needs more than FHIR
+requires (an identifier to make resends idempotent, a patient, a time of day). Each check here
+yields an Issue with the FHIRPath of the element; nothing here touches the database.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+import orjson
+
+from service.domain.catalogue import LOINC_SYSTEM, CatalogueEntry
+from service.domain.insulin import InsulinCodes
+from service.domain.units import UCUM_SYSTEM, UnitNotAccepted, to_canonical
+from service.domain.values import ResultStatus
+from service.errors import Issue
+
+__all__ = [
+    "IncomingInsulin",
+    "IncomingObservation",
+    "IncomingPatient",
+    "Invalid",
+    "content_hash",
+    "normalise_insulin",
+    "normalise_observation",
+    "normalise_patient",
+    "parse_datetime",
+]
+
+REPLACES_URL = "http://hl7.org/fhir/StructureDefinition/observation-replaces"
+OBSERVATION_STATUSES = frozenset(s.value for s in ResultStatus)
+MEDADMIN_STATUSES = frozenset(
+    {"in-progress", "not-done", "on-hold", "completed", "entered-in-error", "stopped", "unknown"}
+)
+# SNOMED CT route concepts (from memory; verify locally): 47625008 intravenous, 34206005 subcutaneous.
+_ROUTES = {"47625008": "intravenous", "34206005": "subcutaneous"}
+
+
+class Invalid(Exception):
+    """The resource cannot be accepted; ``issues`` say why and where."""
+
+    def __init__(self, issues: list[Issue]) -> None:
+        super().__init__("; ".join(i.message for i in issues))
+        self.issues = issues
+
+
+@dataclass(frozen=True, slots=True)
+class IncomingObservation:
+    identifier: tuple[str, str]
+    subject: dict[str, Any]
+    entry: CatalogueEntry
+    status: str
+    effective: datetime
+    issued: datetime | None
+    value: float | None
+    comparator: str | None
+    encounter: str | None
+    replaces: str | None
+    resource: dict[str, Any]
+    content_hash: str
+
+
+@dataclass(frozen=True, slots=True)
+class IncomingInsulin:
+    identifier: tuple[str, str]
+    subject: dict[str, Any]
+    status: str
+    medication: str
+    route: str | None
+    start: datetime
+    end: datetime | None
+    resource: dict[str, Any]
+    content_hash: str
+
+
+@dataclass(frozen=True, slots=True)
+class IncomingPatient:
+    """A Patient sent only so that its references and identifiers name one person."""
+
+    id: str | None
+    identifiers: tuple[tuple[str, str], ...]
+    resource: dict[str, Any]
+
+
+def content_hash(resource: dict[str, Any]) -> str:
+    """Hash of what the sender said, without the server-managed id and meta."""
+    body = {k: v for k, v in resource.items() if k not in ("id", "meta")}
+    return hashlib.sha256(orjson.dumps(body, option=orjson.OPT_SORT_KEYS)).hexdigest()
+
+
+def parse_datetime(value: str) -> datetime:
+    """A FHIR dateTime/instant with offset → aware UTC. Partial dates are the caller's to refuse."""
+    return datetime.fromisoformat(value.replace("Z", "+00:00")).astimezone(UTC)
+
+
+def _has_time(value: Any) -> bool:
+    return isinstance(value, str) and "T" in value
+
+
+def _identifier(resource: dict[str, Any], root: str, what: str) -> tuple[str, str]:
+    for ident in resource.get("identifier") or ():
+        system, value = ident.get("system"), ident.get("value")
+        if system and value:
+            return str(system), str(value)
+    raise Invalid(
+        [
+            Issue(
+                "required",
+                f"{what} needs an identifier with system and value: lytestream keys resends, "
+                "corrections and withdrawals on it",
+                (f"{root}.identifier",),
+                status=422,
+            )
+        ]
+    )
+
+
+def _subject(resource: dict[str, Any], root: str) -> dict[str, Any]:
+    subject = resource.get("subject")
+    if not subject or not (subject.get("reference") or subject.get("identifier")):
+        raise Invalid(
+            [Issue("required", "subject is required: the Patient this is about", (f"{root}.subject",), status=422)]
+        )
+    return dict(subject)
+
+
+def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root: str) -> IncomingObservation:
+    """A validated Observation dict of a watched LOINC code → IncomingObservation, or Invalid."""
+    issues: list[Issue] = []
+    status = resource.get("status")
+    if status not in OBSERVATION_STATUSES:
+        issues.append(
+            Issue(
+                "code-invalid",
+                f"unknown Observation.status {status!r}; expected one of {', '.join(sorted(OBSERVATION_STATUSES))}",
+                (f"{root}.status",),
+            )
+        )
+    try:
+        identifier = _identifier(resource, root, "Observation")
+    except Invalid as exc:
+        issues += exc.issues
+        identifier = ("", "")
+    try:
+        subject = _subject(resource, root)
+    except Invalid as exc:
+        issues += exc.issues
+        subject = {}
+
+    effective, effective_path = _observation_time(resource, root)
+    if effective is None:
+        issues.append(
+            Issue(
+                "required",
+                "effective[x] with a time of day is required: rules order results by collection time",
+                (effective_path,),
+                status=422,
+            )
+        )
+    value, comparator = None, None
+    quantity = resource.get("valueQuantity")
+    if quantity is not None and quantity.get("value") is not None:
+        value, comparator, unit_issue = _quantity(quantity, entry, f"{root}.valueQuantity")
+        if unit_issue:
+            issues.append(unit_issue)
+    issued = resource.get("issued")
+    if issues:
+        raise Invalid(issues)
+    assert effective is not None
+    return IncomingObservation(
+        identifier=identifier,
+        subject=subject,
+        entry=entry,
+        status=str(status),
+        effective=effective,
+        issued=parse_datetime(issued) if issued else None,
+        value=value,
+        comparator=comparator,
+        encounter=(resource.get("encounter") or {}).get("reference"),
+        replaces=_replaces(resource),
+        resource=resource,
+        content_hash=content_hash(resource),
+    )
+
+
+def _observation_time(resource: dict[str, Any], root: str) -> tuple[datetime | None, str]:
+    for key in ("effectiveDateTime", "effectiveInstant"):
+        if key in resource:
+            value = resource[key]
+            return (parse_datetime(value) if _has_time(value) else None), f"{root}.{key}"
+    period = resource.get("effectivePeriod")
+    if period is not None:
+        # Collection time is the start of the period; an end alone is the best we have.
+        for key in ("start", "end"):
+            if _has_time(period.get(key)):
+                return parse_datetime(period[key]), f"{root}.effectivePeriod.{key}"
+        return None, f"{root}.effectivePeriod"
+    return None, f"{root}.effective[x]"
+
+
+def _quantity(
+    quantity: dict[str, Any], entry: CatalogueEntry, path: str
+) -> tuple[float | None, str | None, Issue | None]:
+    system, code, text = quantity.get("system"), quantity.get("code"), quantity.get("unit")
+    if code is not None and system != UCUM_SYSTEM:
+        return (
+            None,
+            None,
+            Issue(
+                "value",
+                f"unit code {code!r} must come with system {UCUM_SYSTEM} (UCUM)",
+                (f"{path}.system",),
+                status=422,
+            ),
+        )
+    try:
+        value = to_canonical(entry, float(quantity["value"]), code=code, text=text)
+    except UnitNotAccepted as exc:
+        return (
+            None,
+            None,
+            Issue(
+                "value",
+                f"unit {exc.unit!r} is not accepted for LOINC {entry.code} ({entry.display}); "
+                f"accepted UCUM units: {', '.join(exc.accepted)}",
+                (f"{path}.code" if code is not None else f"{path}.unit",),
+                status=422,
+            ),
+        )
+    return value, quantity.get("comparator"), None
+
+
+def _replaces(resource: dict[str, Any]) -> str | None:
+    for ext in resource.get("extension") or ():
+        if ext.get("url") == REPLACES_URL:
+            ref = ext.get("valueReference") or {}
+            if ref.get("reference"):
+                return str(ref["reference"]).split("/_history/")[0]
+            ident = ref.get("identifier") or {}
+            if ident.get("system") and ident.get("value"):
+                return f"id:{ident['system']}|{ident['value']}"
+    return None
+
+
+def normalise_insulin(
+    resource: dict[str, Any], codes: InsulinCodes, root: str
+) -> IncomingInsulin | None:
+    """A validated MedicationAdministration → IncomingInsulin; None when it is not insulin."""
+    concept = resource.get("medicationCodeableConcept") or {}
+    medication = codes.match(concept.get("coding") or ())
+    if medication is None:
+        return None
+    issues: list[Issue] = []
+    status = resource.get("status")
+    if status not in MEDADMIN_STATUSES:
+        issues.append(
+            Issue(
+                "code-invalid",
+                f"unknown MedicationAdministration.status {status!r}; "
+                f"expected one of {', '.join(sorted(MEDADMIN_STATUSES))}",
+                (f"{root}.status",),
+            )
+        )
+    try:
+        identifier = _identifier(resource, root, "MedicationAdministration")
+    except Invalid as exc:
+        issues += exc.issues
+        identifier = ("", "")
+    subject = resource.get("subject") or {}
+    start: datetime | None = None
+    end: datetime | None = None
+    if _has_time(resource.get("effectiveDateTime")):
+        start = end = parse_datetime(resource["effectiveDateTime"])
+    elif isinstance(resource.get("effectivePeriod"), dict):
+        period = resource["effectivePeriod"]
+        start = parse_datetime(period["start"]) if _has_time(period.get("start")) else None
+        end = parse_datetime(period["end"]) if _has_time(period.get("end")) else None
+    if start is None:
+        issues.append(
+            Issue(
+                "required",
+                "effectiveDateTime or effectivePeriod.start with a time of day is required",
+                (f"{root}.effective[x]",),
+                status=422,
+            )
+        )
+    if issues:
+        raise Invalid(issues)
+    assert start is not None
+    return IncomingInsulin(
+        identifier=identifier,
+        subject=dict(subject),
+        status=str(status),
+        medication=medication,
+        route=_route(resource.get("dosage") or {}),
+        start=start,
+        end=end,
+        resource=resource,
+        content_hash=content_hash(resource),
+    )
+
+
+def _route(dosage: dict[str, Any]) -> str | None:
+    route = dosage.get("route") or {}
+    for coding in route.get("coding") or ():
+        if coding.get("code") in _ROUTES:
+            return _ROUTES[coding["code"]]
+    text = str(route.get("text") or "").lower()
+    if "intraven" in text or text == "iv":
+        return "intravenous"
+    if "subcut" in text or text in ("sc", "sq"):
+        return "subcutaneous"
+    return text or None
+
+
+def normalise_patient(resource: dict[str, Any], root: str) -> IncomingPatient:
+    identifiers = tuple(
+        (str(i["system"]), str(i["value"]))
+        for i in resource.get("identifier") or ()
+        if i.get("system") and i.get("value")
+    )
+    return IncomingPatient(id=resource.get("id"), identifiers=identifiers, resource=resource)
+
+
+def loinc_codes(resource: dict[str, Any]) -> list[str]:
+    """The LOINC codes in Observation.code, in order."""
+    return [
+        str(c.get("code"))
+        for c in (resource.get("code") or {}).get("coding") or ()
+        if isinstance(c, dict) and c.get("system") == LOINC_SYSTEM
+    ]

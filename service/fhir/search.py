@@ -1,0 +1,54 @@
+"""FHIR search parameter values → query bounds. Pure."""
+
+from __future__ import annotations
+
+import re
+from datetime import UTC, datetime, timedelta
+
+from service.errors import Issue, RequestRejected
+
+__all__ = ["date_bounds"]
+
+_PREFIX = re.compile(r"^(eq|ge|gt|le|lt)?(\d{4}(-\d{2}(-\d{2}(T.+)?)?)?)$")
+
+
+def _range(text: str) -> tuple[datetime, datetime]:
+    """The implicit range a FHIR date value covers (a day, a month, a year, or an instant)."""
+    if "T" in text:
+        start = datetime.fromisoformat(text.replace("Z", "+00:00"))
+        if start.tzinfo is None:
+            raise ValueError("a search date-time needs a UTC offset")
+        start = start.astimezone(UTC)
+        return start, start + timedelta(seconds=1)
+    parts = [int(p) for p in text.split("-")]
+    if len(parts) == 3:
+        start = datetime(parts[0], parts[1], parts[2], tzinfo=UTC)
+        return start, start + timedelta(days=1)
+    if len(parts) == 2:
+        start = datetime(parts[0], parts[1], 1, tzinfo=UTC)
+        end = datetime(parts[0] + parts[1] // 12, parts[1] % 12 + 1, 1, tzinfo=UTC)
+        return start, end
+    return datetime(parts[0], 1, 1, tzinfo=UTC), datetime(parts[0] + 1, 1, 1, tzinfo=UTC)
+
+
+def date_bounds(values: list[str], name: str = "date") -> tuple[datetime | None, datetime | None]:
+    """[from, to) for repeated ``date`` parameters (AND); RequestRejected names a bad value."""
+    low: datetime | None = None
+    high: datetime | None = None
+    for value in values:
+        m = _PREFIX.match(value)
+        try:
+            if not m:
+                raise ValueError("not a FHIR date")
+            start, end = _range(m.group(2))
+        except ValueError as exc:
+            raise RequestRejected([Issue("value", f"search parameter {name}={value!r}: {exc}; use e.g. "
+                                         "ge2024-03-01 or lt2024-03-01T10:00:00Z")]) from exc
+        prefix = m.group(1) or "eq"
+        lo, hi = {"eq": (start, end), "ge": (start, None), "gt": (end, None),
+                  "le": (None, end), "lt": (None, start)}[prefix]
+        if lo is not None:
+            low = lo if low is None else max(low, lo)
+        if hi is not None:
+            high = hi if high is None else min(high, hi)
+    return low, high

@@ -1,0 +1,63 @@
+"""A cheap first look at each resource, before the expensive model validation.
+
+A real panel carries a dozen analytes and lytestream watches four: results of codes outside the
+catalogue, and medications that are not insulin, are acknowledged and dropped here without being
+validated or stored.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from enum import StrEnum
+from typing import Any
+
+from service.domain.catalogue import LOINC_SYSTEM, CatalogueEntry, lookup
+from service.domain.insulin import InsulinCodes
+
+__all__ = ["Kind", "Triage", "triage"]
+
+
+class Kind(StrEnum):
+    OBSERVATION = "observation"
+    INSULIN = "insulin"
+    PATIENT = "patient"
+    IGNORED = "ignored"
+
+
+@dataclass(frozen=True, slots=True)
+class Triage:
+    kind: Kind
+    entry: CatalogueEntry | None = None
+    reason: str = ""
+
+
+def triage(resource: dict[str, Any], insulin: InsulinCodes) -> Triage:
+    """What to do with this resource: process it, or acknowledge and drop it (with the reason)."""
+    rtype = resource.get("resourceType")
+    if rtype == "Observation":
+        code = resource.get("code")
+        codings = code.get("coding") if isinstance(code, dict) else None
+        if not isinstance(codings, list):
+            # Malformed enough that the models must say what is wrong.
+            return Triage(Kind.OBSERVATION)
+        for coding in codings:
+            if isinstance(coding, dict) and coding.get("system") == LOINC_SYSTEM:
+                entry = lookup(str(coding.get("code")))
+                if entry is not None:
+                    return Triage(Kind.OBSERVATION, entry)
+        return Triage(Kind.IGNORED, reason="Observation code is not one lytestream watches; not stored")
+    if rtype == "MedicationAdministration":
+        concept = resource.get("medicationCodeableConcept")
+        codings = concept.get("coding") if isinstance(concept, dict) else None
+        if isinstance(codings, list) and insulin.match(c for c in codings if isinstance(c, dict)):
+            return Triage(Kind.INSULIN)
+        if "medicationReference" in resource:
+            return Triage(
+                Kind.IGNORED,
+                reason="medicationReference is not resolved; send medicationCodeableConcept "
+                "for insulin to be recognised; not stored",
+            )
+        return Triage(Kind.IGNORED, reason="medication is not insulin under the site policy; not stored")
+    if rtype == "Patient":
+        return Triage(Kind.PATIENT)
+    return Triage(Kind.IGNORED, reason=f"{rtype} is not a resource lytestream watches; not stored")

@@ -1,0 +1,69 @@
+"""The FastAPI application: routers, FHIR error handling, and the process-wide context."""
+
+from __future__ import annotations
+
+import logging
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import Response
+from starlette.exceptions import HTTPException
+
+from service.api.context import AppContext
+from service.api.fhir_io import outcome_response
+from service.api.routes import ingest, meta, read
+from service.clock import Clock, SystemClock
+from service.config import Settings
+from service.db.engine import Database
+from service.domain.insulin import InsulinCodes
+from service.errors import Issue, NotFound, RequestRejected
+from service.ingest import Ingestor
+
+__all__ = ["build_context", "create_app"]
+
+log = logging.getLogger("lytestream")
+
+
+def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bool = True) -> AppContext:
+    db = Database(settings.resolved_database_url)
+    if migrate:
+        db.create_schema()
+    clock = clock or SystemClock()
+    ingestor = Ingestor(db=db, settings=settings, insulin=InsulinCodes(), clock=clock)
+    return AppContext(settings=settings, db=db, clock=clock, ingestor=ingestor)
+
+
+def create_app(settings: Settings | None = None, *, context: AppContext | None = None) -> FastAPI:
+    ctx = context or build_context(settings or Settings())
+    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs", redoc_url=None)
+    app.state.ctx = ctx
+    app.include_router(meta.router)
+    app.include_router(ingest.router)
+    app.include_router(read.router)
+
+    @app.exception_handler(RequestRejected)
+    async def _rejected(_: Request, exc: RequestRejected) -> Response:
+        log.info("request rejected: status=%s issues=%d", exc.status, len(exc.issues))
+        return outcome_response(exc.issues, exc.status)
+
+    @app.exception_handler(NotFound)
+    async def _not_found(_: Request, exc: NotFound) -> Response:
+        return outcome_response([Issue("not-found", str(exc), status=404)], 404)
+
+    @app.exception_handler(HTTPException)
+    async def _http(_: Request, exc: HTTPException) -> Response:
+        code = {404: "not-found", 405: "not-supported"}.get(exc.status_code, "processing")
+        return outcome_response([Issue(code, str(exc.detail))], exc.status_code)
+
+    @app.exception_handler(RequestValidationError)
+    async def _invalid(_: Request, exc: RequestValidationError) -> Response:
+        return outcome_response([Issue("invalid", "request parameters are not valid")], 400)
+
+    @app.exception_handler(Exception)
+    async def _crash(_: Request, exc: Exception) -> Response:
+        # No PHI: the type only; the traceback goes to the server log.
+        log.exception("unhandled %s", type(exc).__name__)
+        return outcome_response([Issue("exception", "internal error; nothing from this request was stored",
+                                       severity="fatal")], 500)
+
+    return app
