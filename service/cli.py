@@ -1,0 +1,85 @@
+"""The `lytestream` command: serve, migrate, replay a feed."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+from rich.console import Console
+
+from service.config import Settings
+
+app = typer.Typer(help="lytestream: FHIR lab results in, safety Flags out. Decision support only.",
+                  no_args_is_help=True, add_completion=False)
+db_app = typer.Typer(help="Database schema.", no_args_is_help=True)
+app.add_typer(db_app, name="db")
+console = Console(stderr=True)
+
+DatabaseUrl = Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
+DataDir = Annotated[Path | None, typer.Option(help="where the embedded SQLite database lives")]
+
+
+def _settings(database_url: str | None = None, data_dir: Path | None = None) -> Settings:
+    overrides: dict[str, Any] = {}
+    if database_url:
+        overrides["database_url"] = database_url
+    if data_dir:
+        overrides["data_dir"] = data_dir
+    return Settings(**overrides)
+
+
+@app.command()
+def serve(
+    host: Annotated[str, typer.Option(help="interface to listen on")] = "127.0.0.1",
+    port: Annotated[int, typer.Option(help="TCP port")] = 8080,
+    database_url: DatabaseUrl = None,
+    data_dir: DataDir = None,
+) -> None:
+    """Run the FHIR service (migrates the schema first)."""
+    import uvicorn
+
+    from service.main import create_app
+
+    settings = _settings(database_url, data_dir)
+    if "base_url" not in settings.model_fields_set:
+        settings = settings.model_copy(update={"base_url": f"http://{host}:{port}/fhir"})
+    console.print(f"lytestream on http://{host}:{port}/fhir — database {_safe_url(settings)}")
+    console.print("[dim]Decision support only: thresholds are site policy; defer to local protocols.[/dim]")
+    uvicorn.run(create_app(settings), host=host, port=port, log_level="info")
+
+
+@db_app.command("upgrade")
+def db_upgrade(database_url: DatabaseUrl = None, data_dir: DataDir = None) -> None:
+    """Bring the schema to the newest migration."""
+    from service.db.engine import Database
+
+    settings = _settings(database_url, data_dir)
+    db = Database(settings.resolved_database_url)
+    db.create_schema()
+    db.dispose()
+    console.print(f"schema up to date at {_safe_url(settings)}")
+
+
+@app.command()
+def replay(
+    file: Annotated[Path, typer.Argument(help="FHIR NDJSON: one resource per line", exists=True, dir_okay=False)],
+    url: Annotated[str, typer.Option(help="FHIR base URL of the service")] = "http://127.0.0.1:8080/fhir",
+    bundle_size: Annotated[int, typer.Option(min=1, max=1000, help="resources per transaction")] = 100,
+) -> None:
+    """Send a feed as idempotent transaction Bundles (conditional update by identifier)."""
+    from service.replay import replay_file
+
+    summary = replay_file(file, url, bundle_size=bundle_size, console=console)
+    typer.echo(f"accepted {summary.accepted} rejected {summary.rejected} of {summary.total} entries")
+    for line in summary.errors[:20]:
+        typer.echo(line)
+    if summary.rejected:
+        raise typer.Exit(code=1)
+
+
+def _safe_url(settings: Settings) -> str:
+    """The database URL without a password, for the console."""
+    from sqlalchemy.engine import make_url
+
+    return make_url(settings.resolved_database_url).render_as_string(hide_password=True)

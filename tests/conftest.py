@@ -1,0 +1,84 @@
+"""Shared fixtures: a store on each backend, a movable clock, an API client."""
+
+from __future__ import annotations
+
+import os
+import uuid
+from collections.abc import Iterator
+from datetime import UTC, datetime
+from pathlib import Path
+
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import create_engine, text
+
+from service.clock import FixedClock
+from service.config import Settings
+from service.main import build_context, create_app
+
+POSTGRES_URL = os.environ.get(
+    "LYTESTREAM_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
+)
+
+
+def _postgres_reason() -> str | None:
+    try:
+        engine = create_engine(POSTGRES_URL, connect_args={"connect_timeout": 3})
+        with engine.connect() as conn:
+            conn.execute(text("SELECT 1"))
+        engine.dispose()
+    except Exception as exc:  # any failure to reach it means: skip, and say why
+        return f"PostgreSQL not reachable at {POSTGRES_URL} ({type(exc).__name__}); set LYTESTREAM_TEST_POSTGRES_URL"
+    return None
+
+
+_PG_SKIP = _postgres_reason()
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
+def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """A fresh, empty database URL on each backend (PostgreSQL: a schema of its own)."""
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'lytestream.db'}"
+        return
+    if _PG_SKIP:
+        pytest.skip(_PG_SKIP)
+    schema = f"t_{uuid.uuid4().hex[:12]}"
+    admin = create_engine(POSTGRES_URL)
+    with admin.begin() as conn:
+        conn.execute(text(f'CREATE SCHEMA "{schema}"'))
+    sep = "&" if "?" in POSTGRES_URL else "?"
+    try:
+        yield f"{POSTGRES_URL}{sep}options=-csearch_path%3D{schema}"
+    finally:
+        with admin.begin() as conn:
+            conn.execute(text(f'DROP SCHEMA "{schema}" CASCADE'))
+        admin.dispose()
+
+
+@pytest.fixture
+def sqlite_url(tmp_path: Path) -> str:
+    return f"sqlite:///{tmp_path / 'lytestream.db'}"
+
+
+@pytest.fixture
+def clock() -> FixedClock:
+    return FixedClock(datetime(2026, 3, 2, 12, 0, tzinfo=UTC))
+
+
+@pytest.fixture
+def settings(database_url: str, tmp_path: Path) -> Settings:
+    return Settings(database_url=database_url, data_dir=tmp_path, base_url="http://testserver/fhir")
+
+
+@pytest.fixture
+def context(settings: Settings, clock: FixedClock):  # type: ignore[no-untyped-def]
+    ctx = build_context(settings, clock=clock)
+    yield ctx
+    ctx.db.dispose()
+
+
+@pytest.fixture
+def client(context) -> Iterator[TestClient]:  # type: ignore[no-untyped-def]
+    with TestClient(create_app(context=context)) as c:
+        yield c

@@ -1,0 +1,123 @@
+"""Hyperglycaemic crisis: osmolality and glucose falling too fast.
+
+Limits: effective osmolality fall 8 mOsm/kg/h and glucose fall 5 mmol/L/h (Mustafa 2023 JBDS via
+clinical-reference §5; also Scott 2015 JBDS position statement "3-8 mOsm/kg/h"), over at least 2 h
+(common practice, no source), when the starting glucose is >=13.9 mmol/L (250 mg/dL; Kitabchi
+2009, from memory). Paediatric profile 3 mOsm/kg/h (Kitabchi 2009, from memory).
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from service.domain.findings import Priority, Rule
+from service.domain.rules import evaluate
+from service.domain.values import Specimen
+from service.policy import load_policy
+from tests.domain.test_support import at, glu, na, osm, timeline
+
+ADULT = load_policy()
+PAEDIATRIC = load_policy(profile="paediatric")
+
+
+def findings(*results, p=ADULT):  # type: ignore[no-untyped-def]
+    return {f.rule: f for f in evaluate(timeline(list(results)), p, at(100))}
+
+
+def test_measured_osmolality_360_to_340_in_2h_is_falling_too_fast() -> None:
+    # clinical-reference §5 rate example: 360 -> 340 over 2 h = 10 mOsm/kg/h > 8
+    start, end = osm(360, 0), osm(340, 2)
+    fall = findings(start, end, glu(40, 0))[Rule.OSMOLALITY_FALL_TOO_FAST]
+    assert fall.numbers["rate_per_hour"] == pytest.approx(10.0)
+    assert fall.priority is Priority.MEDIUM
+    assert {start.reference, end.reference} <= set(fall.evidence)
+    assert fall.sentence.startswith(
+        "Effective osmolality (measured) fell 20 mOsm/kg in 2 h (10 mOsm/kg/h), from 360 to 340"
+    )
+
+
+def test_glucose_40_to_28_in_2h_is_falling_too_fast() -> None:
+    # clinical-reference §5 rate example: 40 -> 28 mmol/L over 2 h = 6 mmol/L/h > 5
+    fall = findings(glu(40, 0), glu(28, 2))[Rule.GLUCOSE_FALL_TOO_FAST]
+    assert fall.numbers["rate_per_hour"] == pytest.approx(6.0)
+    assert fall.numbers["limit"] == 5
+
+
+@pytest.mark.parametrize(("end", "flagged"), [(344.0, False), (343.9, True)])
+def test_osmolality_limit_of_8_per_hour_is_exclusive(end: float, flagged: bool) -> None:
+    assert (Rule.OSMOLALITY_FALL_TOO_FAST in findings(osm(360, 0), osm(end, 2), glu(40, 0))) is flagged
+
+
+@pytest.mark.parametrize(("end", "flagged"), [(30.0, False), (29.9, True)])
+def test_glucose_limit_of_5_per_hour_is_exclusive(end: float, flagged: bool) -> None:
+    assert (Rule.GLUCOSE_FALL_TOO_FAST in findings(glu(40, 0), glu(end, 2))) is flagged
+
+
+def test_a_fall_over_less_than_2h_is_not_measured() -> None:
+    assert Rule.GLUCOSE_FALL_TOO_FAST not in findings(glu(40, 0), glu(30, 1.9))
+
+
+def test_a_fall_over_exactly_2h_is_measured() -> None:
+    assert Rule.GLUCOSE_FALL_TOO_FAST in findings(glu(40, 0), glu(28, 2.0))
+
+
+@pytest.mark.parametrize(("start", "flagged"), [(13.9, True), (13.8, False)])
+def test_glucose_rule_applies_only_from_a_starting_glucose_of_13_9(start: float, flagged: bool) -> None:
+    # Kitabchi 2009 (from memory): 250 mg/dL = 13.9 mmol/L, inclusive
+    assert (Rule.GLUCOSE_FALL_TOO_FAST in findings(glu(start, 0), glu(start - 10.1, 2))) is flagged
+
+
+def test_osmolality_rule_needs_a_high_starting_glucose() -> None:
+    assert Rule.OSMOLALITY_FALL_TOO_FAST not in findings(osm(360, 0), osm(340, 2), glu(8, 0))
+
+
+def test_censored_high_glucose_counts_as_a_high_start_for_osmolality() -> None:
+    assert Rule.OSMOLALITY_FALL_TOO_FAST in findings(
+        osm(360, 0), osm(340, 2), glu(33.3, 0, comparator=">")
+    )
+
+
+def test_effective_osmolality_is_calculated_when_none_was_measured() -> None:
+    # ADA footnote via clinical-reference §5: effective = 2 Na + glucose.
+    # 2*140 + 40 = 320 -> 2*141 + 18 = 300 in 2 h: 10 mOsm/kg/h
+    fall = findings(na(140, 0), glu(40, 0.1), na(141, 2), glu(18, 2.1))[Rule.OSMOLALITY_FALL_TOO_FAST]
+    assert fall.numbers["start"] == pytest.approx(320.0)
+    assert fall.numbers["current"] == pytest.approx(300.0)
+    assert "(calculated)" in fall.sentence
+
+
+def test_measured_and_calculated_osmolality_are_never_mixed_in_one_rate() -> None:
+    # measured 330 (includes urea) then only 2*140 + 30 = 310: the fall is only the missing urea
+    assert Rule.OSMOLALITY_FALL_TOO_FAST not in findings(osm(330, 0), glu(30, 0), na(140, 2), glu(30, 2))
+
+
+def test_falling_glucose_sentence_shows_corrected_sodium_when_glucose_is_high() -> None:
+    # Katz 1973 via clinical-reference §4: Na 130 with glucose 28 -> 130 + 1.6*(28-5.55074)/5.55074
+    expected = 130 + 1.6 * (28 - 5.55074) / 5.55074
+    fall = findings(glu(40, 0), glu(28, 2), na(130, 2))[Rule.GLUCOSE_FALL_TOO_FAST]
+    assert fall.numbers["corrected_sodium"] == pytest.approx(expected, abs=1e-3)
+    assert f"glucose-corrected sodium {expected:.1f} mmol/L" in fall.sentence
+
+
+def test_falling_glucose_sentence_omits_corrected_sodium_once_glucose_is_low() -> None:
+    fall = findings(glu(25, 0), glu(12, 2), na(130, 2))[Rule.GLUCOSE_FALL_TOO_FAST]
+    assert "corrected" not in fall.sentence
+
+
+def test_point_of_care_glucose_feeds_the_glucose_rate_by_default() -> None:
+    poc = Specimen.POINT_OF_CARE
+    assert Rule.GLUCOSE_FALL_TOO_FAST in findings(glu(40, 0, specimen=poc), glu(28, 2, specimen=poc))
+
+
+def test_paediatric_profile_flags_an_osmolality_fall_of_4_per_hour() -> None:
+    # Kitabchi 2009 (from memory): <=3 mOsm/kg/h; 4/h passes the adult 8/h
+    results = (osm(360, 0), osm(352, 2), glu(40, 0))
+    assert Rule.OSMOLALITY_FALL_TOO_FAST in findings(*results, p=PAEDIATRIC)
+    assert Rule.OSMOLALITY_FALL_TOO_FAST not in findings(*results, p=ADULT)
+
+
+def test_rate_is_measured_over_the_latest_span_of_at_least_2h() -> None:
+    # 40 -> 39 (slow) then 39 -> 27 in 2 h: 6/h from the point 2 h back
+    fall = findings(glu(40, 0), glu(39, 1), glu(27, 3))[Rule.GLUCOSE_FALL_TOO_FAST]
+    assert fall.numbers["start"] == 39
+    assert fall.numbers["hours"] == 2
