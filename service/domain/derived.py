@@ -6,7 +6,7 @@ All inputs in canonical units (mmol/L; osmolality mOsm/kg). Pure arithmetic, no 
 from __future__ import annotations
 
 from collections.abc import Iterable
-from datetime import timedelta
+from datetime import datetime, timedelta
 
 from service.domain.values import LabResult
 
@@ -60,14 +60,13 @@ def pair_nearest(
     Ties go to the earlier draw, then the lower observation id, so the pairing never depends on
     the order results arrived in. Censored and valueless candidates are never paired.
     """
-    best: tuple[timedelta, object, str, LabResult] | None = None
+    best: LabResult | None = None
+    best_key: tuple[timedelta, datetime, str] | None = None
     for candidate in candidates:
         if candidate.value is None or candidate.comparator is not None:
             continue
         gap = abs(candidate.effective - anchor.effective)
-        if gap > window:
-            continue
-        key = (gap, candidate.effective, candidate.observation_id, candidate)
-        if best is None or key[:3] < best[:3]:
-            best = key
-    return None if best is None else best[3]
+        key = (gap, candidate.effective, candidate.observation_id)
+        if gap <= window and (best_key is None or key < best_key):
+            best, best_key = candidate, key
+    return best

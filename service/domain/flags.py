@@ -102,11 +102,11 @@ def reconcile(
 
     changes: list[tuple[tuple[str, str, str, int], FlagChange]] = []
     for key, finding in by_key.items():
-        flag = flags.get(key)
-        if flag is None:
+        current = flags.get(key)
+        if current is None:
             changes.append((_order(key, 0), CreateFlag(finding)))
-        elif _differs(flag, finding):
-            changes.append((_order(key, 1), UpdateFlag(flag, finding)))
+        elif _differs(current, finding):
+            changes.append((_order(key, 1), UpdateFlag(current, finding)))
     for flag in sorted(open_flags, key=lambda f: (f.key, f.id)):
         if flag.key in by_key and flags[flag.key] is flag:
             continue

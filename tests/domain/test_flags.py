@@ -95,7 +95,8 @@ def test_a_flag_whose_insulin_administration_was_withdrawn_is_withdrawn() -> Non
 def test_a_new_episode_closes_the_old_flag_and_creates_another() -> None:
     old = open_flag(finding(onset=at(0)))
     new = finding(onset=at(6), evidence=("Observation/c/_history/1",))
-    assert reconcile([new], [old], set(), NOW) == [CreateFlag(new), CloseFlag(old, NOW)]
+    # Ordered by episode: the old one closes before the new one is raised.
+    assert reconcile([new], [old], set(), NOW) == [CloseFlag(old, NOW), CreateFlag(new)]
 
 
 def test_a_duplicate_open_flag_for_one_episode_is_closed() -> None:
@@ -125,8 +126,9 @@ def test_round_trip_from_results_to_flags_closes_when_sodium_recovers() -> None:
     [created] = reconcile([f], [], set(), at(1))
     assert isinstance(created, CreateFlag)
     flag = open_flag(created.finding)
-    recovered = evaluate(timeline([low, na(126, 4)]), POLICY, at(5))
-    assert reconcile(recovered, [flag], set(), at(5)) == [CloseFlag(flag, at(5))]
+    # 3 mmol/L in 12 h: neither critical nor a fast or projected rise
+    recovered = evaluate(timeline([low, na(121, 12)]), POLICY, at(13))
+    assert reconcile(recovered, [flag], set(), at(13)) == [CloseFlag(flag, at(13))]
 
 
 def test_round_trip_withdraws_when_the_only_result_is_entered_in_error() -> None:
