@@ -32,6 +32,9 @@ class Settings(BaseSettings):
     page_size_default: int = Field(default=50, gt=0)
     page_size_max: int = Field(default=500, gt=0)
     policy_file: Path | None = Field(default=None, description="site policy TOML; default: built-in")
+    policy_profile: str | None = Field(default=None, description="policy profile, e.g. paediatric")
+    scheduler: bool = Field(default=True, description="run the time-driven jobs in this process")
+    recheck_seconds: float = Field(default=60.0, gt=0, description="how often time-driven flags are rechecked")
 
     @field_validator("lab_timezone")
     @classmethod

@@ -41,7 +41,7 @@ from service.fhir.validate import validate_resource
 __all__ = ["EntryRequest", "EntryResult", "Ingestor", "OnChange"]
 
 # Called inside the unit of work with the patients whose data changed, before it commits.
-OnChange = Callable[[Session, set[str], datetime], None]
+OnChange = Callable[[Session, set[str], datetime], object]
 
 _STORED_TYPES = ("Observation", "MedicationAdministration")
 

@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import logging
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from datetime import timedelta
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
@@ -11,13 +14,15 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
-from service.api.routes import ingest, meta, read
+from service.api.routes import flags, ingest, meta, read
 from service.clock import Clock, SystemClock
 from service.config import Settings
 from service.db.engine import Database
-from service.domain.insulin import InsulinCodes
 from service.errors import Issue, NotFound, RequestRejected
+from service.evaluation import Evaluator
 from service.ingest import Ingestor
+from service.jobs import start_scheduler
+from service.policy import load_policy
 
 __all__ = ["build_context", "create_app"]
 
@@ -25,20 +30,35 @@ log = logging.getLogger("lytestream")
 
 
 def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bool = True) -> AppContext:
+    """Everything a process needs, from its settings: the policy is validated here, at start-up."""
+    policy = load_policy(settings.policy_file, profile=settings.policy_profile)
     db = Database(settings.resolved_database_url)
     if migrate:
         db.create_schema()
     clock = clock or SystemClock()
-    ingestor = Ingestor(db=db, settings=settings, insulin=InsulinCodes(), clock=clock)
-    return AppContext(settings=settings, db=db, clock=clock, ingestor=ingestor)
+    evaluator = Evaluator(policy=policy, lookback=timedelta(hours=settings.lookback_hours))
+    ingestor = Ingestor(db=db, settings=settings, insulin=policy.insulin.codes_matcher(), clock=clock,
+                        on_change=evaluator)
+    return AppContext(settings=settings, db=db, clock=clock, ingestor=ingestor, policy=policy,
+                      evaluator=evaluator)
 
 
 def create_app(settings: Settings | None = None, *, context: AppContext | None = None) -> FastAPI:
     ctx = context or build_context(settings or Settings())
-    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs", redoc_url=None)
+    @asynccontextmanager
+    async def lifespan(_: FastAPI) -> AsyncIterator[None]:
+        scheduler = start_scheduler(ctx) if ctx.settings.scheduler else None
+        try:
+            yield
+        finally:
+            if scheduler is not None:
+                scheduler.shutdown(wait=True)
+
+    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs", redoc_url=None, lifespan=lifespan)
     app.state.ctx = ctx
     app.include_router(meta.router)
     app.include_router(ingest.router)
+    app.include_router(flags.router)
     app.include_router(read.router)
 
     @app.exception_handler(RequestRejected)

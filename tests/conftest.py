@@ -68,7 +68,7 @@ def clock() -> FixedClock:
 
 @pytest.fixture
 def settings(database_url: str, tmp_path: Path) -> Settings:
-    return Settings(database_url=database_url, data_dir=tmp_path, base_url="http://testserver/fhir")
+    return Settings(database_url=database_url, data_dir=tmp_path, base_url="http://testserver/fhir", scheduler=False)
 
 
 @pytest.fixture

@@ -10,7 +10,9 @@ from fastapi import Depends, Request
 from service.clock import Clock
 from service.config import Settings
 from service.db.engine import Database
+from service.evaluation import Evaluator
 from service.ingest import Ingestor
+from service.policy import Policy
 
 __all__ = ["AppContext", "ContextDep"]
 
@@ -21,6 +23,8 @@ class AppContext:
     db: Database
     clock: Clock
     ingestor: Ingestor
+    policy: Policy
+    evaluator: Evaluator
 
 
 def _context(request: Request) -> AppContext:

@@ -2,16 +2,25 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 
-from sqlalchemy import and_, func, select
+from sqlalchemy import and_, func, or_, select
 from sqlmodel import Session
 
 from service.db.tables import FhirVersion, ObservationRecord, PatientAlias
 
-__all__ = ["ObservationQuery", "history", "patient_key_for", "read_version", "search_observations"]
+__all__ = [
+    "FlagQuery",
+    "ObservationQuery",
+    "history",
+    "patient_key_for",
+    "read_references",
+    "read_version",
+    "search_flags",
+    "search_observations",
+]
 
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
 _OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
@@ -76,3 +85,65 @@ def search_observations(*, session: Session, q: ObservationQuery) -> tuple[list[
         .offset(q.offset)
     )
     return [bytes(r[0]) for r in rows], int(total)
+
+
+@dataclass(frozen=True)
+class FlagQuery:
+    patient_key: str | None = None
+    statuses: Sequence[str] = ()
+    rules: Sequence[str] = ()
+    priorities: Sequence[str] = ()
+    date_from: datetime | None = None  # the flag's period overlaps [date_from, date_to)
+    date_to: datetime | None = None
+    updated_from: datetime | None = None
+    updated_to: datetime | None = None
+    sort: str = "-_lastUpdated"
+    count: int = 50
+    offset: int = 0
+
+
+def search_flags(*, session: Session, q: FlagQuery) -> tuple[list[bytes], int]:
+    """One page of current Flags as served, and the total number of matches."""
+    from service.db.tables import FlagRecord
+
+    f = FlagRecord.__table__  # type: ignore[attr-defined]
+    conds = []
+    if q.patient_key is not None:
+        conds.append(f.c.patient_key == q.patient_key)
+    if q.statuses:
+        conds.append(f.c.status.in_(list(q.statuses)))
+    if q.rules:
+        conds.append(f.c.rule.in_(list(q.rules)))
+    if q.priorities:
+        conds.append(f.c.priority.in_(list(q.priorities)))
+    if q.date_from is not None:
+        conds.append(or_(f.c.period_end.is_(None), f.c.period_end >= q.date_from))
+    if q.date_to is not None:
+        conds.append(f.c.period_start < q.date_to)
+    if q.updated_from is not None:
+        conds.append(f.c.last_updated >= q.updated_from)
+    if q.updated_to is not None:
+        conds.append(f.c.last_updated < q.updated_to)
+    where = and_(*conds) if conds else True
+    total = session.execute(select(func.count()).select_from(f).where(where)).scalar_one()
+    column = {"date": f.c.period_start, "_lastUpdated": f.c.last_updated}[q.sort.lstrip("-")]
+    order = column.desc() if q.sort.startswith("-") else column.asc()
+    rows = session.execute(
+        select(_V.c.resource)
+        .select_from(f.join(_V, and_(_V.c.resource_type == "Flag", _V.c.id == f.c.id,
+                                     _V.c.version_id == f.c.version_id)))
+        .where(where).order_by(order, f.c.id).limit(q.count).offset(q.offset)
+    )
+    return [bytes(r[0]) for r in rows], int(total)
+
+
+def read_references(*, session: Session, references: Iterable[str]) -> list[bytes]:
+    """Resources named by version-specific references ("Observation/x/_history/2"), as served then."""
+    out: list[bytes] = []
+    for ref in sorted(set(references)):
+        parts = ref.split("/")
+        if len(parts) == 4 and parts[2] == "_history" and parts[3].isdigit():
+            body = read_version(session=session, resource_type=parts[0], rid=parts[1], version=int(parts[3]))
+            if body is not None:
+                out.append(body)
+    return out

@@ -14,6 +14,7 @@ from sqlmodel import Field, SQLModel
 
 __all__ = [
     "FhirVersion",
+    "FlagRecord",
     "InsulinRecord",
     "ObservationRecord",
     "PatientAlias",
@@ -127,3 +128,29 @@ class FhirVersion(SQLModel, table=True):
     last_updated: datetime = _utc(nullable=False)
     request_id: int | None = None  # ReceivedRequest that carried it
     resource: bytes = Field(sa_column=Column(LargeBinary, nullable=False))  # FHIR JSON as served
+
+
+class FlagRecord(SQLModel, table=True):
+    """The current version of a Flag: one per (patient, rule, episode), reactivated if it recurs."""
+
+    __tablename__ = "flag"
+    __table_args__ = (
+        UniqueConstraint("patient_key", "rule", "episode", name="uq_flag_episode"),
+        Index("ix_flag_patient_status", "patient_key", "status"),
+        Index("ix_flag_last_updated", "last_updated"),
+    )
+    id: str = Field(primary_key=True)
+    patient_key: str
+    rule: str
+    episode: str
+    status: str  # active | inactive | entered-in-error
+    priority: str  # high | medium | low
+    period_start: datetime = _utc(nullable=False)
+    period_end: datetime | None = _utc(nullable=True)
+    evidence: str  # JSON list of version-specific references
+    numbers: str  # JSON object of the computed numbers
+    sentence: str
+    encounter: str | None = None
+    policy_hash: str
+    version_id: int = 1
+    last_updated: datetime = _utc(nullable=False)

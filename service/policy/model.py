@@ -13,11 +13,13 @@ from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from service.domain.insulin import InsulinCodes
 from service.domain.values import Analyte, Specimen
 
 __all__ = [
     "CrisisRate",
     "Derived",
+    "InsulinMedication",
     "InsulinPotassium",
     "LevelLimit",
     "Policy",
@@ -135,6 +137,16 @@ class Derived(_Section):
     show_corrected_sodium_from_glucose: Positive
 
 
+class InsulinMedication(_Section):
+    """Which medication codings count as insulin: ATC prefixes and single "system|code" entries."""
+
+    atc_prefixes: Annotated[tuple[Annotated[str, Field(min_length=1)], ...], Field(min_length=1)]
+    codes: tuple[Annotated[str, Field(pattern=r"^[^|]+\|[^|]+$")], ...]
+
+    def codes_matcher(self) -> InsulinCodes:
+        return InsulinCodes(atc_prefixes=self.atc_prefixes, codes=frozenset(self.codes))
+
+
 class Policy(_Section):
     """One resolved profile of the site policy."""
 
@@ -144,6 +156,7 @@ class Policy(_Section):
     sodium: SodiumPolicy
     crisis: CrisisRate
     insulin_potassium: InsulinPotassium
+    insulin: InsulinMedication
 
     @model_validator(mode="after")
     def _check(self) -> Policy:

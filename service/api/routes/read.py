@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from urllib.parse import urlencode
-
 import orjson
 from fastapi import APIRouter, Request
 from fastapi.concurrency import run_in_threadpool
@@ -13,13 +11,14 @@ from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
 from service.errors import Issue, NotFound, RequestRejected
-from service.fhir.render import fhir_instant, searchset, status_line
+from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.fhir.render import fhir_instant, status_line
 from service.fhir.search import date_bounds
 
 router = APIRouter()
 
-_READABLE = ("Observation", "MedicationAdministration")
-_OBS_PARAMS = {"patient", "patient:identifier", "subject", "code", "date", "_count", "_offset", "_sort", "_format"}
+_READABLE = ("Observation", "MedicationAdministration", "Flag")
+_OBS_PARAMS = {"patient", "patient:identifier", "subject", "code", "date", "_count", "_offset", "_sort"}
 
 
 @router.get("/fhir/{rtype}/{rid}")
@@ -68,19 +67,14 @@ def instance_history(rtype: str, rid: str, ctx: ContextDep) -> Response:
 @router.get("/fhir/Observation")
 async def search(request: Request, ctx: ContextDep) -> Response:
     params = request.query_params
-    unknown = sorted(set(params) - _OBS_PARAMS)
-    if unknown:
-        raise RequestRejected([Issue("not-supported", f"search parameter(s) not supported: {', '.join(unknown)}; "
-                                     f"supported: {', '.join(sorted(_OBS_PARAMS - {'_format'}))}")])
-    count = _int(params.get("_count"), ctx.settings.page_size_default, "_count")
-    count = min(max(count, 1), ctx.settings.page_size_max)
-    offset = max(_int(params.get("_offset"), 0, "_offset"), 0)
+    check_params(params, _OBS_PARAMS)
+    page = Page(params, ctx.settings)
     sort = params.get("_sort", "-date")
     if sort.lstrip("-") not in ("date", "_lastUpdated"):
         raise RequestRejected([Issue("not-supported", "_sort supports date, -date, _lastUpdated, -_lastUpdated")])
     low, high = date_bounds(params.getlist("date"))
-    codes = [c.split("|")[-1] for v in params.getlist("code") for c in v.split(",")]
-    alias = _patient_alias(params.get("patient") or params.get("subject"), params.get("patient:identifier"))
+    codes = split_tokens(params, "code")
+    alias = patient_alias(params)
 
     def run() -> tuple[list[bytes], int]:
         with ctx.db.session() as session:
@@ -88,34 +82,12 @@ async def search(request: Request, ctx: ContextDep) -> Response:
             if alias and key is None:
                 return [], 0
             q = ObservationQuery(patient_key=key, codes=codes, date_from=low, date_to=high, sort=sort,
-                                 count=count, offset=offset)
+                                 count=page.count, offset=page.offset)
             return search_observations(session=session, q=q)
 
     rows, total = await run_in_threadpool(run)
-    base = ctx.settings.base_url
-    query = [(k, v) for k, v in params.multi_items() if k != "_offset"]
-    self_url = f"{base}/Observation?{urlencode([*query, ('_offset', str(offset))])}"
-    next_url = (f"{base}/Observation?{urlencode([*query, ('_offset', str(offset + count))])}"
-                if offset + count < total else None)
-    bundle = searchset([orjson.loads(r) for r in rows], base=base, self_url=self_url, next_url=next_url,
-                       total=total, now=ctx.clock.now())
-    return fhir_response(bundle)
-
-
-def _patient_alias(reference: str | None, identifier: str | None) -> str | None:
-    if identifier:
-        return f"id:{identifier}"
-    if reference:
-        return f"ref:{reference}" if "/" in reference else f"ref:Patient/{reference}"
-    return None
-
-
-def _int(value: str | None, default: int, name: str) -> int:
-    if value is None:
-        return default
-    if not value.lstrip("-").isdigit():
-        raise RequestRejected([Issue("value", f"{name} must be a whole number, not {value!r}")])
-    return int(value)
+    return fhir_response(page_bundle(rtype="Observation", params=params, page=page, rows=rows, total=total,
+                                     settings=ctx.settings, now=ctx.clock.now()))
 
 
 def _readable(rtype: str) -> None:

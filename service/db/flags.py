@@ -1,0 +1,152 @@
+"""Flag rows: open flags per patient, and writing the changes reconcile() decided, version by version."""
+
+from __future__ import annotations
+
+import uuid
+from collections.abc import Iterable, Mapping, Sequence
+from datetime import datetime
+from typing import Any
+
+import orjson
+from sqlalchemy import insert, or_, select, update
+from sqlmodel import Session
+
+from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
+from service.domain.findings import Finding, Priority, Rule
+from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag, WithdrawFlag
+from service.fhir.flag_render import FlagView, render_flag
+
+__all__ = ["FlagWrite", "open_flags", "subjects", "withdrawn_references", "write_changes"]
+
+_FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
+_V = FhirVersion.__table__  # type: ignore[attr-defined]
+_OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
+_INS = InsulinRecord.__table__  # type: ignore[attr-defined]
+_ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
+
+
+def open_flags(*, session: Session, patient_keys: Iterable[str]) -> dict[str, list[OpenFlag]]:
+    """Active flags of these patients, by patient key."""
+    out: dict[str, list[OpenFlag]] = {}
+    keys = sorted(set(patient_keys))
+    for i in range(0, len(keys), 500):
+        rows = session.execute(
+            select(_FLAG).where(_FLAG.c.patient_key.in_(keys[i : i + 500]), _FLAG.c.status == "active")
+        )
+        for r in rows:
+            out.setdefault(r.patient_key, []).append(OpenFlag(
+                id=r.id, patient=r.patient_key, rule=Rule(r.rule), episode=r.episode,
+                evidence=tuple(orjson.loads(r.evidence)), numbers=orjson.loads(r.numbers),
+                sentence=r.sentence, priority=Priority(r.priority), period_start=r.period_start,
+                encounter=r.encounter,
+            ))
+    return out
+
+
+def withdrawn_references(*, session: Session, patient_keys: Iterable[str]) -> set[str]:
+    """Versionless references of these patients' records that were entered in error."""
+    keys = sorted(set(patient_keys))
+    refs: set[str] = set()
+    for table, rtype in ((_OBS, "Observation"), (_INS, "MedicationAdministration")):
+        rows = session.execute(select(table.c.id).where(
+            table.c.patient_key.in_(keys), table.c.status == "entered-in-error"))
+        refs.update(f"{rtype}/{rid}" for (rid,) in rows)
+    return refs
+
+
+def subjects(*, session: Session, patient_keys: Iterable[str]) -> dict[str, dict[str, Any]]:
+    """The FHIR subject Reference for each patient: a literal reference if the feed ever sent one,
+    else an identifier."""
+    rows = session.execute(select(_ALIAS.c.patient_key, _ALIAS.c.alias).where(
+        _ALIAS.c.patient_key.in_(sorted(set(patient_keys)))).order_by(_ALIAS.c.alias))
+    out: dict[str, dict[str, Any]] = {}
+    for key, alias in rows:
+        kind, _, value = alias.partition(":")
+        if kind == "ref" and "reference" not in out.get(key, {}):
+            out[key] = {"reference": value}
+        elif kind == "id" and key not in out:
+            system, _, ident = value.partition("|")
+            out[key] = {"identifier": {"system": system, "value": ident}}
+    return out
+
+
+class FlagWrite:
+    """One written flag version (for the response, notifications and tests)."""
+
+    __slots__ = ("flag", "id", "kind", "version_id")
+
+    def __init__(self, kind: str, id: str, version_id: int, flag: dict[str, Any]) -> None:
+        self.kind, self.id, self.version_id, self.flag = kind, id, version_id, flag
+
+
+def write_changes(
+    *,
+    session: Session,
+    changes: Sequence[FlagChange],
+    subject_of: Mapping[str, Mapping[str, Any]],
+    policy_hash: str,
+    now: datetime,
+) -> list[FlagWrite]:
+    """Apply each change as a new Flag version; a recurring (patient, rule, episode) is reactivated."""
+    written: list[FlagWrite] = []
+    for change in changes:
+        if isinstance(change, (CreateFlag, UpdateFlag)):
+            f = change.finding
+            values = _finding_values(f, policy_hash)
+            prior = change.flag if isinstance(change, UpdateFlag) else None
+            row = _existing(session, f) if prior is None else session.execute(
+                select(_FLAG).where(_FLAG.c.id == prior.id)).first()
+            if row is None:
+                rid, version = str(uuid.uuid4()), 1
+                session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, **values))
+            else:
+                rid, version = row.id, row.version_id + 1
+                session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(
+                    version_id=version, last_updated=now, **values))
+            kind = "create" if row is None else ("reactivate" if prior is None else "update")
+        else:
+            status = "inactive" if isinstance(change, CloseFlag) else "entered-in-error"
+            end = change.end if isinstance(change, CloseFlag) else change.at
+            row = session.execute(select(_FLAG).where(_FLAG.c.id == change.flag.id)).one()
+            rid, version = row.id, row.version_id + 1
+            session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(
+                status=status, period_end=end, version_id=version, last_updated=now))
+            kind = "close" if isinstance(change, CloseFlag) else "withdraw"
+        current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
+        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
+                                          request_id=None, resource=orjson.dumps(flag)))
+        written.append(FlagWrite(kind, rid, version, flag))
+    return written
+
+
+def _existing(session: Session, f: Finding) -> Any:
+    return session.execute(select(_FLAG).where(
+        _FLAG.c.patient_key == f.patient, _FLAG.c.rule == f.rule.value, _FLAG.c.episode == f.episode)).first()
+
+
+def _finding_values(f: Finding, policy_hash: str) -> dict[str, Any]:
+    return {
+        "patient_key": f.patient, "rule": f.rule.value, "episode": f.episode, "status": "active",
+        "priority": f.priority.value, "period_start": f.onset, "period_end": None,
+        "evidence": orjson.dumps(list(f.evidence)).decode(), "numbers": orjson.dumps(dict(f.numbers)).decode(),
+        "sentence": f.sentence, "encounter": f.encounter, "policy_hash": policy_hash,
+    }
+
+
+def _view(r: Any, subject: Mapping[str, Any]) -> FlagView:
+    return FlagView(
+        id=r.id, version_id=r.version_id, last_updated=r.last_updated, status=r.status, rule=r.rule,
+        episode=r.episode, priority=r.priority, period_start=r.period_start, period_end=r.period_end,
+        evidence=orjson.loads(r.evidence), numbers=orjson.loads(r.numbers), sentence=r.sentence,
+        subject=subject, encounter=r.encounter, policy_hash=r.policy_hash,
+    )
+
+
+def patients_to_recheck(*, session: Session, since: datetime) -> list[str]:
+    """Patients whose flags may change with time alone: an active flag, or insulin running or
+    recently stopped (a recheck may fall due)."""
+    keys = {k for (k,) in session.execute(select(_FLAG.c.patient_key).where(_FLAG.c.status == "active").distinct())}
+    keys |= {k for (k,) in session.execute(select(_INS.c.patient_key).where(
+        or_(_INS.c.end.is_(None), _INS.c.end >= since)).distinct())}
+    return sorted(keys)

@@ -1,0 +1,69 @@
+"""Re-evaluation: the touched patients' timelines → rules → reconcile → Flag versions, in the caller's
+unit of work. Called by ingest for every accepted change and by the scheduler when time alone may
+change a flag (a potassium recheck falls due, an episode ages out of its window).
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Iterable
+from datetime import datetime, timedelta
+
+from sqlmodel import Session
+
+from service.db.engine import Database
+from service.db.flags import (
+    FlagWrite,
+    open_flags,
+    patients_to_recheck,
+    subjects,
+    withdrawn_references,
+    write_changes,
+)
+from service.db.timeline import load_timelines
+from service.domain.flags import FlagChange, reconcile
+from service.domain.rules import evaluate
+from service.policy import Policy, policy_hash
+
+__all__ = ["Evaluator"]
+
+log = logging.getLogger("lytestream.evaluation")
+
+
+class Evaluator:
+    """Brings the Flags of some patients in line with their data, the policy and ``now``."""
+
+    def __init__(self, *, policy: Policy, lookback: timedelta) -> None:
+        self.policy = policy
+        self.policy_hash = policy_hash(policy)
+        self.lookback = lookback
+
+    def __call__(self, session: Session, patient_keys: Iterable[str], now: datetime) -> list[FlagWrite]:
+        """Re-evaluate these patients (their locks must be held) and write any Flag changes."""
+        keys = sorted(set(patient_keys))
+        timelines = load_timelines(session=session, patient_keys=keys, end=now, lookback=self.lookback)
+        opened = open_flags(session=session, patient_keys=keys)
+        withdrawn = withdrawn_references(session=session, patient_keys=keys)
+        changes: list[FlagChange] = []
+        for key in keys:
+            findings = evaluate(timelines[key], self.policy, now)
+            changes += reconcile(findings, opened.get(key, []), withdrawn, now)
+        if not changes:
+            return []
+        subject_of = subjects(session=session, patient_keys=keys)
+        written = write_changes(session=session, changes=changes, subject_of=subject_of,
+                                policy_hash=self.policy_hash, now=now)
+        log.info("flags changed: %s", ", ".join(sorted({w.kind for w in written})))
+        return written
+
+    def recheck(self, db: Database, now: datetime) -> int:
+        """The time-driven pass: each candidate patient in its own short unit of work, under its lock,
+        so it is safe when several replicas run it (the second finds nothing left to change)."""
+        with db.session() as session:
+            keys = patients_to_recheck(session=session, since=now - self.lookback)
+        changed = 0
+        for key in keys:
+            with db.session(write=True) as session:
+                db.lock_patients(session, [key])
+                changed += len(self(session, [key], now))
+        return changed

@@ -1,0 +1,89 @@
+"""A stored flag version → FHIR R4 Flag JSON. Pure.
+
+The Flag carries its evidence (one version-specific ``flag-detail`` per result), its priority
+(``flag-priority``), and an extension of ours with the rule, the episode, the computed numbers and the
+hash of the policy it was judged under, so an analyst can explain it later from the Flag alone.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+from service.fhir.render import CAUTION, fhir_instant
+
+__all__ = [
+    "EVALUATION_URL",
+    "FlagView",
+    "RULE_SYSTEM",
+    "render_flag",
+]
+
+# Our own namespace (".example" is reserved, so it can never collide with a real site).
+CANONICAL_BASE = "https://lytestream.example/fhir"
+RULE_SYSTEM = f"{CANONICAL_BASE}/CodeSystem/rule"
+EVALUATION_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-evaluation"
+FLAG_PRIORITY_URL = "http://hl7.org/fhir/StructureDefinition/flag-priority"
+FLAG_DETAIL_URL = "http://hl7.org/fhir/StructureDefinition/flag-detail"
+_PRIORITY = {"high": ("PH", "High priority"), "medium": ("PM", "Medium priority"), "low": ("PL", "Low priority")}
+
+
+@dataclass(frozen=True, slots=True)
+class FlagView:
+    """Everything one Flag version shows."""
+
+    id: str
+    version_id: int
+    last_updated: datetime
+    status: str
+    rule: str
+    episode: str
+    priority: str
+    period_start: datetime
+    period_end: datetime | None
+    evidence: Sequence[str]
+    numbers: Mapping[str, float]
+    sentence: str
+    subject: Mapping[str, Any]
+    encounter: str | None
+    policy_hash: str
+
+
+def render_flag(v: FlagView) -> dict[str, Any]:
+    code, display = _PRIORITY[v.priority]
+    evaluation: list[dict[str, Any]] = [
+        {"url": "rule", "valueCode": v.rule},
+        {"url": "episode", "valueString": v.episode},
+        {"url": "policyHash", "valueString": v.policy_hash},
+        *(
+            {"url": "number", "extension": [{"url": "name", "valueString": name},
+                                           {"url": "value", "valueDecimal": value}]}
+            for name, value in v.numbers.items()
+        ),
+        {"url": "caution", "valueString": CAUTION},
+    ]
+    flag: dict[str, Any] = {
+        "resourceType": "Flag",
+        "id": v.id,
+        "meta": {"versionId": str(v.version_id), "lastUpdated": fhir_instant(v.last_updated)},
+        "extension": [
+            {"url": FLAG_PRIORITY_URL, "valueCodeableConcept": {"coding": [
+                {"system": "http://hl7.org/fhir/flag-priority-code", "code": code, "display": display}]}},
+            *({"url": FLAG_DETAIL_URL, "valueReference": {"reference": ref}} for ref in v.evidence),
+            {"url": EVALUATION_URL, "extension": evaluation},
+        ],
+        "status": v.status,
+        "category": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/flag-category",
+                                  "code": "clinical", "display": "Clinical"}]}],
+        "code": {"coding": [{"system": RULE_SYSTEM, "code": v.rule}], "text": v.sentence},
+        "subject": dict(v.subject),
+        "period": {"start": fhir_instant(v.period_start)},
+        "author": {"reference": "Device/lytestream", "display": "lytestream"},
+    }
+    if v.period_end is not None:
+        flag["period"]["end"] = fhir_instant(v.period_end)
+    if v.encounter:
+        flag["encounter"] = {"reference": v.encounter}
+    return flag

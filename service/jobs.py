@@ -1,0 +1,44 @@
+"""Time-driven work, on APScheduler: what no incoming request would trigger.
+
+Each job is idempotent and safe when several replicas run it: re-evaluation takes the patient's lock
+and writes only what differs from the stored flags, so a second run finds nothing to change.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from typing import TYPE_CHECKING
+
+from apscheduler.schedulers.background import BackgroundScheduler
+
+if TYPE_CHECKING:
+    from service.api.context import AppContext
+
+__all__ = ["JOBS", "run_job", "start_scheduler"]
+
+log = logging.getLogger("lytestream.jobs")
+
+
+def recheck_flags(ctx: AppContext) -> int:
+    """Re-evaluate patients whose flags may change with time alone (e.g. a potassium recheck due)."""
+    return ctx.evaluator.recheck(ctx.db, ctx.clock.now())
+
+
+JOBS: dict[str, Callable[[AppContext], int]] = {"recheck-flags": recheck_flags}
+
+
+def run_job(ctx: AppContext, name: str) -> int:
+    changed = JOBS[name](ctx)
+    log.info("job %s: %d flag change(s)", name, changed)
+    return changed
+
+
+def start_scheduler(ctx: AppContext) -> BackgroundScheduler:
+    scheduler = BackgroundScheduler(timezone="UTC")
+    for name in JOBS:
+        # coalesce + one instance: a slow run is never stacked with the next.
+        scheduler.add_job(run_job, "interval", seconds=ctx.settings.recheck_seconds, args=(ctx, name), id=name,
+                          coalesce=True, max_instances=1)
+    scheduler.start()
+    return scheduler
