@@ -14,6 +14,8 @@ app = typer.Typer(help="lytestream: FHIR lab results in, safety Flags out. Decis
                   no_args_is_help=True, add_completion=False)
 db_app = typer.Typer(help="Database schema.", no_args_is_help=True)
 app.add_typer(db_app, name="db")
+policy_app = typer.Typer(help="Site policy (thresholds).", no_args_is_help=True)
+app.add_typer(policy_app, name="policy")
 console = Console(stderr=True)
 
 DatabaseUrl = Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
@@ -59,6 +61,40 @@ def db_upgrade(database_url: DatabaseUrl = None, data_dir: DataDir = None) -> No
     db.create_schema()
     db.dispose()
     console.print(f"schema up to date at {_safe_url(settings)}")
+
+
+PolicyFile = Annotated[Path | None, typer.Argument(help="policy TOML (default: the built-in policy)")]
+Profile = Annotated[str | None, typer.Option(help="profile to apply, e.g. paediatric")]
+
+
+@policy_app.command("show")
+def policy_show(file: PolicyFile = None, profile: Profile = None) -> None:
+    """Print the resolved policy as JSON with its hash (what every Flag records)."""
+    import orjson
+
+    from service.policy import PolicyError, load_policy, policy_hash
+
+    try:
+        policy = load_policy(file, profile=profile)
+    except PolicyError as exc:
+        console.print(f"[red]policy refused:[/red] {exc}")
+        raise typer.Exit(code=2) from exc
+    body = {"hash": policy_hash(policy), "policy": policy.model_dump(mode="json")}
+    typer.echo(orjson.dumps(body, option=orjson.OPT_INDENT_2).decode())
+
+
+@policy_app.command("check")
+def policy_check(file: Annotated[Path, typer.Argument(help="policy TOML to check", exists=True, dir_okay=False)],
+                 profile: Profile = None) -> None:
+    """Validate a policy file; exit 2 naming the first bad key."""
+    from service.policy import PolicyError, load_policy, policy_hash
+
+    try:
+        policy = load_policy(file, profile=profile)
+    except PolicyError as exc:
+        typer.echo(f"policy refused: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    typer.echo(f"policy ok: profile {policy.profile}, hash {policy_hash(policy)}")
 
 
 @app.command()

@@ -1,0 +1,159 @@
+"""Flags through the API: raised, updated, closed and withdrawn by what the data say."""
+
+from __future__ import annotations
+
+from datetime import timedelta
+from typing import Any
+
+from fastapi.testclient import TestClient
+from fhir.resources.R4B.flag import Flag
+
+from service.api.context import AppContext
+from service.clock import FixedClock
+from service.fhir.flag_render import EVALUATION_URL, FLAG_DETAIL_URL
+from tests.factories import HEADERS, bundle, dumps, insulin, observation
+
+
+def send(client: TestClient, *resources: dict[str, Any], kind: str = "batch") -> None:
+    r = client.post("/fhir", content=dumps(bundle(kind, *resources)), headers=HEADERS)
+    assert r.status_code == 200, r.text
+    assert all(e["response"]["status"].startswith("20") for e in r.json()["entry"]), r.text
+
+
+def flags(client: TestClient, query: str = "") -> list[dict[str, Any]]:
+    body = client.get(f"/fhir/Flag?_count=100{query}").json()
+    return [e["resource"] for e in body["entry"] if e["search"]["mode"] == "match"]
+
+
+def rules(client: TestClient, status: str = "active") -> list[str]:
+    return sorted(f["code"]["coding"][0]["code"] for f in flags(client, f"&status={status}"))
+
+
+def test_critical_low_sodium_raises_one_high_priority_flag(client: TestClient) -> None:
+    # Sodium <=120 mmol/L is critical (RCPath G158 2017; clinical-reference §1).
+    send(client, observation("na1", value=118))
+    (flag,) = flags(client)
+    Flag.model_validate(flag)
+    assert flag["status"] == "active"
+    assert flag["code"]["coding"][0]["code"] == "sodium-critical-low"
+    assert "118" in flag["code"]["text"]
+    priority = next(e for e in flag["extension"] if e["url"].endswith("flag-priority"))
+    assert priority["valueCodeableConcept"]["coding"][0]["code"] == "PH"
+    assert flag["subject"] == {"reference": "Patient/p1"}
+
+
+def test_flag_cites_the_version_of_its_evidence_and_the_policy_hash(client: TestClient, context: AppContext) -> None:
+    send(client, observation("na1", value=118))
+    (flag,) = flags(client)
+    details = [e["valueReference"]["reference"] for e in flag["extension"] if e["url"] == FLAG_DETAIL_URL]
+    assert len(details) == 1 and details[0].endswith("/_history/1")
+    evaluation = next(e for e in flag["extension"] if e["url"] == EVALUATION_URL)["extension"]
+    assert {"url": "policyHash", "valueString": context.evaluator.policy_hash} in evaluation
+
+
+def test_resend_does_not_raise_a_second_flag_or_version(client: TestClient) -> None:
+    send(client, observation("na1", value=118))
+    send(client, observation("na1", value=118))
+    (flag,) = flags(client)
+    assert flag["meta"]["versionId"] == "1"
+
+
+def test_correction_that_removes_the_danger_closes_the_flag(client: TestClient) -> None:
+    send(client, observation("na1", value=118))
+    send(client, observation("na1", value=138, status="corrected"))
+    assert rules(client) == []
+    (closed,) = flags(client, "&status=inactive")
+    assert closed["period"]["end"]
+    assert closed["meta"]["versionId"] == "2"
+
+
+def test_entered_in_error_withdraws_the_flag_that_rested_on_it(client: TestClient) -> None:
+    send(client, observation("k1", code="2823-3", value=6.9))
+    send(client, observation("k1", code="2823-3", value=6.9, status="entered-in-error"))
+    assert rules(client, "entered-in-error") == ["potassium-critical-high"]
+    assert rules(client) == []
+
+
+def test_newer_result_back_inside_limits_clears_the_flag(client: TestClient) -> None:
+    send(client, observation("k1", code="2823-3", value=2.3, effective="2026-03-02T06:00:00+00:00"))
+    assert rules(client) == ["potassium-critical-low"]
+    send(client, observation("k2", code="2823-3", value=3.9, effective="2026-03-02T09:00:00+00:00"))
+    assert rules(client) == []
+
+
+def test_late_older_result_does_not_reopen_a_cleared_flag(client: TestClient) -> None:
+    send(client, observation("k2", code="2823-3", value=3.9, effective="2026-03-02T09:00:00+00:00"))
+    send(client, observation("k1", code="2823-3", value=2.3, effective="2026-03-02T06:00:00+00:00"))
+    assert rules(client) == []
+
+
+def test_urine_sodium_never_raises_a_serum_flag(client: TestClient) -> None:
+    # 2955-3 Sodium [Moles/volume] in Urine (clinical-reference §8a): 10 mmol/L is ordinary in urine.
+    send(client, observation("u1", code="2955-3", value=10))
+    assert flags(client) == []
+
+
+def test_sodium_rising_too_fast_is_flagged_with_its_numbers(client: TestClient) -> None:
+    # Rise above 10 mmol/L in 24 h from a nadir below 130 (Spasovski 2014, clinical-reference §2).
+    send(client, observation("n0", value=112, effective="2026-03-01T16:00:00+00:00"),
+         observation("n1", value=118, effective="2026-03-01T22:00:00+00:00"),
+         observation("n2", value=123, effective="2026-03-02T08:00:00+00:00"))
+    assert "sodium-rise-too-fast" in rules(client)
+    flag = next(f for f in flags(client) if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast")
+    assert "112" in flag["code"]["text"] and "123" in flag["code"]["text"]
+    details = [e for e in flag["extension"] if e["url"] == FLAG_DETAIL_URL]
+    assert len(details) >= 2
+
+
+def test_new_evidence_makes_a_new_version_of_the_same_flag(client: TestClient) -> None:
+    send(client, observation("n0", value=112, effective="2026-03-01T16:00:00+00:00"),
+         observation("n2", value=123, effective="2026-03-02T08:00:00+00:00"))
+    first = {f["id"]: f for f in flags(client) if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast"}
+    send(client, observation("n3", value=125, effective="2026-03-02T10:00:00+00:00"))
+    after = {f["id"]: f for f in flags(client) if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast"}
+    assert after.keys() == first.keys()
+    (flag,) = after.values()
+    assert int(flag["meta"]["versionId"]) == 2
+    history = client.get(f"/fhir/Flag/{flag['id']}/_history").json()
+    assert history["total"] == 2
+
+
+def test_hypokalemia_during_insulin_raised_by_the_recheck_job_once_overdue(
+    client: TestClient, context: AppContext, clock: FixedClock
+) -> None:
+    # K <3.5 during an IV insulin infusion with no newer K within 2 h (Umpierrez 2024 [from memory];
+    # recheck 2-hourly, JBDS DKA [from memory]; clinical-reference §6).
+    send(client, insulin("m1", start="2026-03-02T09:00:00+00:00"),
+         observation("k1", code="2823-3", value=3.2, effective="2026-03-02T11:00:00+00:00"))
+    assert "hypokalemia-on-insulin" not in rules(client)
+    clock.advance(timedelta(hours=1, minutes=30))  # 13:30: 2.5 h since the last potassium
+    assert context.evaluator.recheck(context.db, clock.now()) >= 1
+    assert "hypokalemia-on-insulin" in rules(client)
+    assert context.evaluator.recheck(context.db, clock.now()) == 0  # a second run changes nothing
+
+
+def test_flag_search_filters_and_includes_evidence(client: TestClient) -> None:
+    send(client, observation("na1", value=118),
+         observation("k1", code="2823-3", value=6.9, patient="Patient/p2"))
+    assert len(flags(client, "&patient=Patient/p2")) == 1
+    assert len(flags(client, "&code=sodium-critical-low")) == 1
+    assert len(flags(client, "&priority=PH")) == 2
+    assert flags(client, "&patient=Patient/nobody") == []
+    body = client.get("/fhir/Flag?patient=Patient/p1&_include=Flag:detail").json()
+    modes = sorted(e["search"]["mode"] for e in body["entry"])
+    assert modes == ["include", "match"]
+    included = next(e["resource"] for e in body["entry"] if e["search"]["mode"] == "include")
+    assert included["resourceType"] == "Observation" and included["valueQuantity"]["value"] == 118
+
+
+def test_flag_read_and_vread(client: TestClient) -> None:
+    send(client, observation("na1", value=118))
+    send(client, observation("na1", value=138, status="corrected"))
+    (flag,) = flags(client, "&status=inactive")
+    assert client.get(f"/fhir/Flag/{flag['id']}/_history/1").json()["status"] == "active"
+    assert client.get(f"/fhir/Flag/{flag['id']}").json()["status"] == "inactive"
+
+
+def test_flag_search_refuses_unknown_include(client: TestClient) -> None:
+    r = client.get("/fhir/Flag?_include=Flag:subject")
+    assert r.status_code == 400

@@ -1,0 +1,91 @@
+"""Invariant 1: the active flags are a function of (stored data, policy, time).
+
+The same stream replayed shuffled, with duplicates and with late results, ends with the same
+active Flags (rule, episode, priority, sentence and the results they rest on). Flags raised and
+closed on the way may differ with arrival order; the ones left standing may not.
+"""
+
+from __future__ import annotations
+
+import tempfile
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import orjson
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from service.clock import FixedClock
+from service.config import Settings
+from service.db.reads import FlagQuery, read_version, search_flags
+from service.fhir.flag_render import FLAG_DETAIL_URL
+from service.ingest import EntryRequest
+from service.main import build_context
+from tests.factories import insulin, observation
+
+NOW = datetime(2026, 3, 2, 12, 0, tzinfo=UTC)
+
+# Invented stream: a correcting hyponatraemia, a critical potassium later corrected, an insulin
+# infusion with two low potassium results, a withdrawn glucose, and a patient who stays normal.
+STREAM: list[dict[str, Any]] = [
+    observation("a1", value=112, patient="Patient/a", effective="2026-03-01T14:00:00+00:00"),
+    observation("a2", value=117, patient="Patient/a", effective="2026-03-01T20:00:00+00:00", status="preliminary"),
+    observation("a2", value=118, patient="Patient/a", effective="2026-03-01T20:00:00+00:00"),
+    observation("a3", value=124, patient="Patient/a", effective="2026-03-02T08:00:00+00:00"),
+    observation("b1", code="2823-3", value=6.8, patient="Patient/b", effective="2026-03-02T07:00:00+00:00"),
+    observation("b1", code="2823-3", value=4.8, patient="Patient/b", effective="2026-03-02T07:00:00+00:00",
+                status="corrected", issued="2026-03-02T09:00:00+00:00"),
+    insulin("c-ins", patient="Patient/c", start="2026-03-02T06:00:00+00:00"),
+    observation("c1", code="2823-3", value=3.3, patient="Patient/c", effective="2026-03-02T08:00:00+00:00"),
+    observation("c2", code="2823-3", value=3.1, patient="Patient/c", effective="2026-03-02T10:00:00+00:00"),
+    observation("d1", code="2345-7", value=30, unit="mg/dL", patient="Patient/d",
+                effective="2026-03-02T09:00:00+00:00"),
+    observation("d1", code="2345-7", value=30, unit="mg/dL", patient="Patient/d",
+                effective="2026-03-02T09:00:00+00:00", status="entered-in-error"),
+    observation("e1", value=139, patient="Patient/e", effective="2026-03-02T09:00:00+00:00"),
+]
+
+
+def active_flags(stream: list[dict[str, Any]]) -> set[tuple[Any, ...]]:
+    with tempfile.TemporaryDirectory() as tmp:
+        ctx = build_context(Settings(data_dir=Path(tmp), scheduler=False), clock=FixedClock(NOW))
+        try:
+            for resource in stream:
+                ctx.ingestor.batch([EntryRequest(root="Bundle.entry[0].resource",
+                                                 resource=orjson.loads(orjson.dumps(resource)))], raw=b"{}")
+            with ctx.db.session() as session:
+                rows, _ = search_flags(session=session, q=FlagQuery(statuses=["active"], count=500))
+                out = set()
+                for row in rows:
+                    flag = orjson.loads(row)
+                    evidence = []
+                    for e in flag["extension"]:
+                        if e["url"] == FLAG_DETAIL_URL:
+                            rtype, rid, _, vid = e["valueReference"]["reference"].split("/")
+                            cited = orjson.loads(read_version(session=session, resource_type=rtype, rid=rid,
+                                                              version=int(vid)) or b"{}")
+                            cited.pop("id"), cited.pop("meta")
+                            evidence.append(orjson.dumps(cited, option=orjson.OPT_SORT_KEYS))
+                    out.add((flag["code"]["coding"][0]["code"], flag["subject"]["reference"], flag["code"]["text"],
+                             flag["period"]["start"], tuple(sorted(evidence))))
+                return out
+        finally:
+            ctx.db.dispose()
+
+
+IN_ORDER = active_flags(STREAM)
+
+
+def test_the_stream_in_order_raises_the_expected_flags() -> None:
+    assert sorted((rule, subject) for rule, subject, *_ in IN_ORDER) == [
+        ("hypokalemia-on-insulin", "Patient/c"),
+        ("sodium-rise-too-fast", "Patient/a"),
+    ]
+
+
+@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(order=st.permutations(range(len(STREAM))), repeats=st.lists(st.integers(0, len(STREAM) - 1), max_size=4))
+def test_shuffled_stream_with_duplicates_gives_the_same_active_flags(order: list[int], repeats: list[int]) -> None:
+    stream = [STREAM[i] for i in order] + [STREAM[i] for i in repeats]
+    assert active_flags(stream) == IN_ORDER
