@@ -51,6 +51,38 @@ def serve(
     uvicorn.run(create_app(settings), host=host, port=port, log_level="info")
 
 
+@app.command()
+def demo(
+    file: Annotated[Path | None, typer.Option(help="FHIR NDJSON feed (default: the invented ward)")] = None,
+    data_dir: DataDir = None,
+    end: Annotated[str | None, typer.Option(help="scenario end, e.g. 2026-03-03T00:00:00Z")] = "2026-03-03T00:00:00Z",
+) -> None:
+    """Replay the invented ward's 48 h feed on an embedded SQLite store and print the flags raised."""
+    import tempfile
+
+    from rich.table import Table
+
+    from service.demo import DEFAULT_FEED, run_demo
+    from service.fhir.normalise import parse_datetime
+    from service.fhir.render import CAUTION
+
+    feed = file or DEFAULT_FEED
+    if not feed.exists():
+        console.print(f"[red]no feed at {feed}[/red]")
+        raise typer.Exit(code=2)
+    with tempfile.TemporaryDirectory() as tmp:
+        flags, sent, stored = run_demo(feed, data_dir or Path(tmp), parse_datetime(end) if end else None)
+    table = Table(title=f"Flags raised by the demo ward ({sent} resources sent, {stored} stored)")
+    for column in ("patient", "rule", "priority", "status", "since", "why"):
+        table.add_column(column, overflow="fold")
+    for f in flags:
+        style = "bold red" if f.status == "active" and f.priority == "PH" else None
+        table.add_row(f.patient, f.rule, f.priority, f.status, f.start, f.sentence, style=style)
+    out = Console(width=160)
+    out.print(table)
+    out.print(f"[dim]{CAUTION}[/dim]")
+
+
 @db_app.command("upgrade")
 def db_upgrade(database_url: DatabaseUrl = None, data_dir: DataDir = None) -> None:
     """Bring the schema to the newest migration."""

@@ -8,6 +8,7 @@ that the ``on_change`` hook does for the patients touched (so a 2xx means all of
 
 from __future__ import annotations
 
+from collections import Counter
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import datetime
@@ -19,12 +20,14 @@ from sqlmodel import Session
 
 from service.clock import Clock
 from service.config import Settings
+from service.db.audit import record_audit
 from service.db.engine import Database
 from service.db.patients import IdentityConflict, resolve_patients
 from service.db.resources import Pending, Written, apply_versions, record_request
 from service.domain.insulin import InsulinCodes
 from service.domain.versions import Decision
 from service.errors import Issue, RequestRejected
+from service.fhir.audit_render import AuditFacts, Requester
 from service.fhir.datetimes import fix_offsetless
 from service.fhir.normalise import (
     IncomingInsulin,
@@ -99,19 +102,21 @@ class Ingestor:
 
     # -- units of work -------------------------------------------------------------------
 
-    def single(self, entry: EntryRequest, *, raw: bytes, interaction: str) -> EntryResult:
+    def single(self, entry: EntryRequest, *, raw: bytes, interaction: str,
+               requester: Requester | None = None) -> EntryResult:
         """A single create or conditional update; RequestRejected if it cannot be taken."""
         try:
             prepared = self._prepare(entry, {}, {})
+            with self.db.session(write=True) as session:
+                results = self._store(session, [prepared], raw=raw, interaction=interaction)
+                self._audit(session, requester, interaction, results)
+                return results[0]
         except Invalid as exc:
+            self._audit_refusal(requester, interaction, 1)
             raise RequestRejected(exc.issues) from exc
-        with self.db.session(write=True) as session:
-            try:
-                return self._store(session, [prepared], raw=raw, interaction=interaction)[0]
-            except Invalid as exc:
-                raise RequestRejected(exc.issues) from exc
 
-    def transaction(self, entries: Sequence[EntryRequest], *, raw: bytes) -> list[EntryResult]:
+    def transaction(self, entries: Sequence[EntryRequest], *, raw: bytes,
+                    requester: Requester | None = None) -> list[EntryResult]:
         """All entries or none: RequestRejected lists every issue found, nothing is written."""
         identities, full_urls = self._bundle_identities(entries)
         prepared: list[_Prepared] = []
@@ -122,15 +127,19 @@ class Ingestor:
             except Invalid as exc:
                 issues += exc.issues
         issues += _duplicate_identities(entries, prepared) if not issues else []
-        if issues:
-            raise RequestRejected(issues)
-        with self.db.session(write=True) as session:
-            try:
-                return self._store(session, prepared, raw=raw, interaction="transaction")
-            except Invalid as exc:
-                raise RequestRejected(exc.issues) from exc
+        try:
+            if issues:
+                raise Invalid(issues)
+            with self.db.session(write=True) as session:
+                results = self._store(session, prepared, raw=raw, interaction="transaction")
+                self._audit(session, requester, "transaction", results)
+                return results
+        except Invalid as exc:
+            self._audit_refusal(requester, "transaction", len(entries))
+            raise RequestRejected(exc.issues) from exc
 
-    def batch(self, entries: Sequence[EntryRequest], *, raw: bytes) -> list[EntryResult]:
+    def batch(self, entries: Sequence[EntryRequest], *, raw: bytes,
+              requester: Requester | None = None) -> list[EntryResult]:
         """Each entry on its own: a bad one is reported in its slot and the others are kept."""
         identities, full_urls = self._bundle_identities(entries)
         results: list[EntryResult | None] = [None] * len(entries)
@@ -160,7 +169,30 @@ class Ingestor:
                             [Issue("conflict", "another request changed this resource at the same time; "
                                    "send it again", (entries[i].root,), status=409)]
                         )
-        return [r for r in results if r is not None]
+            done = [r for r in results if r is not None]
+            self._audit(session, requester, "batch", done)
+        return done
+
+    # -- audit -----------------------------------------------------------------------------
+
+    def _audit(self, session: Session, requester: Requester | None, interaction: str,
+               results: Sequence[EntryResult]) -> None:
+        """One AuditEvent per request, in its unit of work: who sent it and the counts, no patient data."""
+        if requester is None:
+            return
+        counts = Counter(str(r.status) for r in results)
+        details = {f"status-{k}": str(v) for k, v in counts.items()} | {"entries": str(len(results))}
+        facts = AuditFacts(subtype=interaction, recorded=self.clock.now(), requester=requester, details=details,
+                           outcome="0" if all(r.status < 400 for r in results) else "4")
+        record_audit(session=session, events=[(facts, None)], base_url=self.settings.base_url)
+
+    def _audit_refusal(self, requester: Requester | None, interaction: str, entries: int) -> None:
+        if requester is None:
+            return
+        facts = AuditFacts(subtype=interaction, recorded=self.clock.now(), requester=requester, outcome="4",
+                           details={"entries": str(entries), "refused": "true"})
+        with self.db.session(write=True) as session:
+            record_audit(session=session, events=[(facts, None)], base_url=self.settings.base_url)
 
     # -- preparing (no database) ---------------------------------------------------------
 

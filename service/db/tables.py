@@ -13,6 +13,7 @@ from sqlalchemy.types import TypeDecorator
 from sqlmodel import Field, SQLModel
 
 __all__ = [
+    "AuditRecord",
     "FhirVersion",
     "FlagRecord",
     "InsulinRecord",
@@ -154,3 +155,21 @@ class FlagRecord(SQLModel, table=True):
     policy_hash: str
     version_id: int = 1
     last_updated: datetime = _utc(nullable=False)
+
+
+class AuditRecord(SQLModel, table=True):
+    """An AuditEvent (append-only): the JSON as served, and the columns its search needs."""
+
+    __tablename__ = "audit_event"
+    __table_args__ = (
+        Index("ix_audit_recorded", "recorded"),
+        Index("ix_audit_patient", "patient_key", "recorded"),
+        Index("ix_audit_client", "client", "recorded"),
+    )
+    id: str = Field(primary_key=True)
+    recorded: datetime = _utc(nullable=False)
+    subtype: str
+    client: str
+    patient_key: str | None = None
+    outcome: str
+    resource: bytes = Field(sa_column=Column(LargeBinary, nullable=False))

@@ -6,13 +6,18 @@ from datetime import datetime
 from typing import Any
 
 from service import __version__
+from service.fhir.flag_render import CANONICAL_BASE, RULE_SYSTEM
 from service.fhir.render import CAUTION, fhir_instant
 
 __all__ = ["capability_statement"]
 
 
-def _search(name: str, kind: str, doc: str) -> dict[str, str]:
-    return {"name": name, "type": kind, "documentation": doc}
+def _search(name: str, kind: str, doc: str, ours: bool = False) -> dict[str, str]:
+    param = {"name": name, "type": kind, "documentation": doc}
+    if ours:
+        # Not a Flag search parameter in R4: defined by this server.
+        param["definition"] = f"{CANONICAL_BASE}/SearchParameter/Flag-{name}"
+    return param
 
 
 def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | None) -> dict[str, Any]:
@@ -56,6 +61,23 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                             _search("patient", "reference", "Patient/id or identifier-based reference"),
                             _search("code", "token", "LOINC code, system|code or code"),
                             _search("date", "date", "effective time; prefixes eq, ge, gt, le, lt"),
+                            _search("_count", "number", "page size"),
+                        ],
+                    },
+                    {
+                        "type": "Flag",
+                        "documentation": "Raised by lytestream's rules; never written by clients. " + CAUTION,
+                        "interaction": [{"code": c} for c in ("read", "vread", "history-instance", "search-type")],
+                        "versioning": "versioned",
+                        "readHistory": True,
+                        "searchInclude": ["Flag:detail"],
+                        "searchParam": [
+                            _search("patient", "reference", "Patient/id, or patient:identifier=system|value"),
+                            _search("date", "date", "the Flag's period overlaps the date"),
+                            _search("_lastUpdated", "date", "when this Flag version was written"),
+                            _search("status", "token", "active | inactive | entered-in-error", ours=True),
+                            _search("code", "token", f"rule code ({RULE_SYSTEM})", ours=True),
+                            _search("priority", "token", "PH | PM | PL (flag-priority)", ours=True),
                             _search("_count", "number", "page size"),
                         ],
                     },

@@ -9,6 +9,7 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
+from service.api.requester import RequesterDep
 from service.api.fhir_io import fhir_response, prefer_return, read_json
 from service.db.reads import read_version
 from service.errors import Issue, RequestRejected
@@ -21,12 +22,12 @@ _BUNDLE_TYPES = ("transaction", "batch")
 
 
 @router.post("/fhir")
-async def post_bundle(request: Request, ctx: ContextDep) -> Response:
+async def post_bundle(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     """A transaction (all or nothing) or batch (entry by entry) Bundle."""
     body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     entries, kind = _bundle_entries(body, ctx.settings.max_bundle_entries)
     ingest = ctx.ingestor.transaction if kind == "transaction" else ctx.ingestor.batch
-    results = await run_in_threadpool(ingest, entries, raw=raw)
+    results = await run_in_threadpool(ingest, entries, raw=raw, requester=who)
     want = prefer_return(request, "minimal")
     bundle = response_bundle(kind, results, representation=want == "representation", now=ctx.clock.now())
     return fhir_response(bundle)
@@ -68,7 +69,7 @@ def _bundle_entries(body: Any, max_entries: int) -> tuple[list[EntryRequest], st
     return entries, kind
 
 
-async def _write(request: Request, ctx: ContextDep, rtype: str, method: str) -> Response:
+async def _write(request: Request, ctx: ContextDep, who: RequesterDep, rtype: str, method: str) -> Response:
     body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     if not isinstance(body, dict) or body.get("resourceType") != rtype:
         got = body.get("resourceType") if isinstance(body, dict) else None
@@ -84,7 +85,7 @@ async def _write(request: Request, ctx: ContextDep, rtype: str, method: str) -> 
     entry = EntryRequest(root=rtype, resource=body, method=method, url=url,
                          if_none_exist=request.headers.get("if-none-exist"))
     result: EntryResult = await run_in_threadpool(
-        ctx.ingestor.single, entry, raw=raw, interaction="create" if method == "POST" else "update")
+        ctx.ingestor.single, entry, raw=raw, interaction="create" if method == "POST" else "update", requester=who)
     if result.body is None and result.location and prefer_return(request, "representation") == "representation":
         # Nothing new was written (a resend): answer with the version held.
         rid, version = result.location.split("/")[1], result.version_id
@@ -110,20 +111,20 @@ def _single_response(request: Request, result: EntryResult, base_url: str) -> Re
 
 
 @router.post("/fhir/Observation")
-async def create_observation(request: Request, ctx: ContextDep) -> Response:
-    return await _write(request, ctx, "Observation", "POST")
+async def create_observation(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    return await _write(request, ctx, who, "Observation", "POST")
 
 
 @router.put("/fhir/Observation")
-async def update_observation(request: Request, ctx: ContextDep) -> Response:
-    return await _write(request, ctx, "Observation", "PUT")
+async def update_observation(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    return await _write(request, ctx, who, "Observation", "PUT")
 
 
 @router.post("/fhir/MedicationAdministration")
-async def create_administration(request: Request, ctx: ContextDep) -> Response:
-    return await _write(request, ctx, "MedicationAdministration", "POST")
+async def create_administration(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    return await _write(request, ctx, who, "MedicationAdministration", "POST")
 
 
 @router.put("/fhir/MedicationAdministration")
-async def update_administration(request: Request, ctx: ContextDep) -> Response:
-    return await _write(request, ctx, "MedicationAdministration", "PUT")
+async def update_administration(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    return await _write(request, ctx, who, "MedicationAdministration", "PUT")

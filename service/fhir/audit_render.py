@@ -1,0 +1,119 @@
+"""AuditEvents after the IHE Basic Audit Log Patterns (BALP). Pure: every input is passed in.
+
+One AuditEvent per patient for reads and searches that return patient data (BALP PatientQuery /
+PatientRead), one per ingest request (BALP Create, with counts and no patient data), one per
+acknowledgement and per subscription change. The service itself is the destination agent.
+"""
+
+from __future__ import annotations
+
+import base64
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+from service.fhir.flag_render import CANONICAL_BASE
+from service.fhir.render import fhir_instant
+
+__all__ = ["AuditFacts", "Requester", "audit_event"]
+
+BALP = "https://profiles.ihe.net/ITI/BALP/StructureDefinition"
+_DCM = "http://dicom.nema.org/resources/ontology/DCM"
+_ENTITY_TYPE = "http://terminology.hl7.org/CodeSystem/audit-entity-type"
+_OBJECT_ROLE = "http://terminology.hl7.org/CodeSystem/object-role"
+CLIENT_SYSTEM = f"{CANONICAL_BASE}/client-id"
+_ACTIONS = {"create": "C", "update": "U", "read": "R", "vread": "R", "search-type": "E", "history-instance": "R",
+            "transaction": "C", "batch": "C", "operation": "E", "delete": "D"}
+_PROFILES = {"read": "PatientRead", "vread": "PatientRead", "search-type": "PatientQuery",
+             "history-instance": "PatientRead"}
+
+
+@dataclass(frozen=True, slots=True)
+class Requester:
+    """Who asked: the token's client and where the request came from."""
+
+    client: str
+    address: str | None
+    request_id: str
+
+
+@dataclass(frozen=True, slots=True)
+class AuditFacts:
+    """One auditable interaction."""
+
+    subtype: str  # restful-interaction code (create, read, search-type, transaction, batch…) or "operation"
+    recorded: datetime
+    requester: Requester
+    outcome: str = "0"  # 0 success, 4 minor failure, 8 serious failure
+    patient: Mapping[str, Any] | None = None  # FHIR Reference of the one patient this event is about
+    what: Sequence[str] = ()  # references of the resources read, written or acted on
+    query: str | None = None  # "GET Flag?patient=…" for searches
+    operation: str | None = None  # e.g. "$acknowledge"
+    details: Mapping[str, str] = field(default_factory=dict)  # counts and the like; never values
+
+
+def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
+    profile = _PROFILES.get(f.subtype, "PatientCreate" if f.patient else "Create")
+    if f.subtype in ("search-type", "read", "vread", "history-instance") and not f.patient:
+        profile = "Query" if f.subtype == "search-type" else "Read"
+    subtype = [{"system": "http://hl7.org/fhir/restful-interaction", "code": f.subtype}]
+    if f.operation:
+        subtype = [{"system": f"{CANONICAL_BASE}/CodeSystem/operation", "code": f.operation.lstrip("$")}]
+    client_agent: dict[str, Any] = {
+        "type": {"coding": [{"system": _DCM, "code": "110153", "display": "Source Role ID"}]},
+        "who": {"identifier": {"system": CLIENT_SYSTEM, "value": f.requester.client}},
+        "requestor": True,
+    }
+    if f.requester.address:
+        client_agent["network"] = {"address": f.requester.address, "type": "2"}
+    entities: list[dict[str, Any]] = []
+    if f.query:
+        entities.append({
+            "type": {"system": _ENTITY_TYPE, "code": "2", "display": "System Object"},
+            "role": {"system": _OBJECT_ROLE, "code": "24", "display": "Query"},
+            "description": f.query,
+            "query": base64.b64encode(f.query.encode()).decode(),
+        })
+    for ref in f.what:
+        entities.append({
+            "type": {"system": _ENTITY_TYPE, "code": "2", "display": "System Object"},
+            "role": {"system": _OBJECT_ROLE, "code": "4", "display": "Domain Resource"},
+            "what": {"reference": ref},
+        })
+    if f.patient:
+        entities.append({
+            "type": {"system": _ENTITY_TYPE, "code": "1", "display": "Person"},
+            "role": {"system": _OBJECT_ROLE, "code": "1", "display": "Patient"},
+            "what": dict(f.patient),
+        })
+    if f.details:
+        entities.append({
+            "type": {"system": _ENTITY_TYPE, "code": "2", "display": "System Object"},
+            "description": "request summary",
+            "detail": [{"type": k, "valueString": v} for k, v in sorted(f.details.items())],
+        })
+    entities.append({
+        "type": {"system": "https://profiles.ihe.net/ITI/BALP/CodeSystem/BasicAuditEntityType", "code": "XrequestId"},
+        "what": {"identifier": {"value": f.requester.request_id}},
+    })
+    return {
+        "resourceType": "AuditEvent",
+        "meta": {"profile": [f"{BALP}/IHE.BasicAudit.{profile}"]},
+        "type": {"system": "http://terminology.hl7.org/CodeSystem/audit-event-type", "code": "rest",
+                 "display": "Restful Operation"},
+        "subtype": subtype,
+        "action": _ACTIONS.get(f.subtype, "E"),
+        "recorded": fhir_instant(f.recorded),
+        "outcome": f.outcome,
+        "agent": [
+            client_agent,
+            {"type": {"coding": [{"system": _DCM, "code": "110152", "display": "Destination Role ID"}]},
+             "who": {"reference": "Device/lytestream"}, "requestor": False,
+             "network": {"address": base_url, "type": "5"}},
+        ],
+        "source": {"observer": {"reference": "Device/lytestream", "display": "lytestream"},
+                   "type": [{"system": "http://terminology.hl7.org/CodeSystem/security-source-type", "code": "4",
+                             "display": "Application Server"}]},
+        "entity": entities,
+    }
