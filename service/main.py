@@ -14,7 +14,7 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
-from service.api.routes import flags, ingest, meta, read
+from service.api.routes import audit, flags, ingest, meta, read
 from service.clock import Clock, SystemClock
 from service.config import Settings
 from service.db.engine import Database
@@ -59,6 +59,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app.include_router(meta.router)
     app.include_router(ingest.router)
     app.include_router(flags.router)
+    app.include_router(audit.router)
     app.include_router(read.router)
 
     @app.exception_handler(RequestRejected)

@@ -9,9 +9,12 @@ from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
+from service.api.requester import RequesterDep
 from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.db.audit import record_audit
 from service.db.reads import FlagQuery, patient_key_for, read_references, search_flags
 from service.errors import Issue, RequestRejected
+from service.fhir.audit_render import AuditFacts, Requester
 from service.fhir.flag_render import FLAG_DETAIL_URL
 from service.fhir.search import date_bounds
 
@@ -24,7 +27,7 @@ INCLUDE_EVIDENCE = "Flag:detail"  # our name for "the result versions each Flag 
 
 
 @router.get("/fhir/Flag")
-async def search(request: Request, ctx: ContextDep) -> Response:
+async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     params = request.query_params
     check_params(params, _PARAMS)
     page = Page(params, ctx.settings)
@@ -53,8 +56,32 @@ async def search(request: Request, ctx: ContextDep) -> Response:
                 refs = [e["valueReference"]["reference"] for r in rows for e in orjson.loads(r)["extension"]
                         if e["url"] == FLAG_DETAIL_URL]
                 included = read_references(session=session, references=refs)
-            return rows, total, included
+        audit_flag_access(ctx, who, rows, subtype="search-type", query=f"GET Flag?{request.url.query}")
+        return rows, total, included
 
     rows, total, included = await run_in_threadpool(run)
     return fhir_response(page_bundle(rtype="Flag", params=params, page=page, rows=rows, total=total,
                                      settings=ctx.settings, now=ctx.clock.now(), included=included))
+
+
+def audit_flag_access(ctx: ContextDep, who: Requester, rows: list[bytes], *, subtype: str,
+                      query: str | None = None) -> None:
+    """BALP: one AuditEvent per patient whose Flags were returned; an empty result leaves one Query event."""
+    by_patient: dict[str, list[str]] = {}
+    for row in rows:
+        flag = orjson.loads(row)
+        key = orjson.dumps(flag["subject"], option=orjson.OPT_SORT_KEYS).decode()
+        by_patient.setdefault(key, []).append(f"Flag/{flag['id']}/_history/{flag['meta']['versionId']}")
+    now = ctx.clock.now()
+    with ctx.db.session(write=True) as session:
+        events: list[tuple[AuditFacts, str | None]] = []
+        if not by_patient:
+            events.append((AuditFacts(subtype=subtype, recorded=now, requester=who, query=query), None))
+        for subject_json, refs in by_patient.items():
+            subject = orjson.loads(subject_json)
+            alias = (f"ref:{subject['reference']}" if "reference" in subject
+                     else f"id:{subject['identifier']['system']}|{subject['identifier']['value']}")
+            facts = AuditFacts(subtype=subtype, recorded=now, requester=who, patient=subject, what=refs,
+                               query=query)
+            events.append((facts, patient_key_for(session=session, alias=alias)))
+        record_audit(session=session, events=events, base_url=ctx.settings.base_url)

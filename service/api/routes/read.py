@@ -9,9 +9,12 @@ from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
+from service.api.requester import RequesterDep
+from service.api.routes.flags import audit_flag_access
 from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
 from service.errors import Issue, NotFound, RequestRejected
 from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.fhir.audit_render import Requester
 from service.fhir.render import fhir_instant, status_line
 from service.fhir.search import date_bounds
 
@@ -22,34 +25,38 @@ _OBS_PARAMS = {"patient", "patient:identifier", "subject", "code", "date", "_cou
 
 
 @router.get("/fhir/{rtype}/{rid}")
-def read(rtype: str, rid: str, ctx: ContextDep) -> Response:
-    return _vread(rtype, rid, None, ctx)
+def read(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -> Response:
+    return _vread(rtype, rid, None, ctx, who)
 
 
 @router.get("/fhir/{rtype}/{rid}/_history/{vid}")
-def vread(rtype: str, rid: str, vid: str, ctx: ContextDep) -> Response:
+def vread(rtype: str, rid: str, vid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     if not vid.isdigit():
         raise NotFound(f"{rtype}/{rid} has no version {vid!r}")
-    return _vread(rtype, rid, int(vid), ctx)
+    return _vread(rtype, rid, int(vid), ctx, who)
 
 
-def _vread(rtype: str, rid: str, vid: int | None, ctx: ContextDep) -> Response:
+def _vread(rtype: str, rid: str, vid: int | None, ctx: ContextDep, who: Requester) -> Response:
     _readable(rtype)
     with ctx.db.session() as session:
         body = read_version(session=session, resource_type=rtype, rid=rid, version=vid)
     if body is None:
         raise NotFound(f"{rtype}/{rid}" + (f"/_history/{vid}" if vid else "") + " is not held here")
+    if rtype == "Flag":
+        audit_flag_access(ctx, who, [body], subtype="vread" if vid else "read")
     meta = orjson.loads(body)["meta"]
     return fhir_response(body, headers={"ETag": f'W/"{meta["versionId"]}"'})
 
 
 @router.get("/fhir/{rtype}/{rid}/_history")
-def instance_history(rtype: str, rid: str, ctx: ContextDep) -> Response:
+def instance_history(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     _readable(rtype)
     with ctx.db.session() as session:
         versions = history(session=session, resource_type=rtype, rid=rid)
     if not versions:
         raise NotFound(f"{rtype}/{rid} is not held here")
+    if rtype == "Flag":
+        audit_flag_access(ctx, who, [versions[0][2]], subtype="history-instance")
     base = ctx.settings.base_url
     entries = [
         {

@@ -1,0 +1,60 @@
+"""AuditEvents: each ingest request and each Flag read or search leaves one, searchable, valid R4."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi.testclient import TestClient
+from fhir.resources.R4B.auditevent import AuditEvent
+
+from tests.factories import HEADERS, bundle, dumps, observation
+
+
+def audits(client: TestClient, query: str = "") -> list[dict[str, Any]]:
+    return [e["resource"] for e in client.get(f"/fhir/AuditEvent?_count=100{query}").json()["entry"]]
+
+
+def test_ingest_request_is_audited_with_counts_and_no_patient_data(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("batch", observation("a"), observation("b", status="bogus"))),
+                headers={**HEADERS, "x-request-id": "req-123"})
+    (event,) = audits(client, "&subtype=batch")
+    AuditEvent.model_validate(event)
+    assert event["action"] == "C" and event["outcome"] == "4"
+    details = {d["type"]: d["valueString"] for e in event["entity"] for d in e.get("detail", [])}
+    assert details == {"entries": "2", "status-201": "1", "status-400": "1"}
+    assert not any(e.get("role", {}).get("code") == "1" for e in event["entity"])  # no patient entity
+    assert {"identifier": {"value": "req-123"}} in [e.get("what") for e in event["entity"]]
+
+
+def test_refused_transaction_is_audited_as_a_failure(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("transaction", observation("a", status="bogus"))), headers=HEADERS)
+    (event,) = audits(client, "&subtype=transaction")
+    assert event["outcome"] == "4"
+
+
+def test_flag_search_is_audited_once_per_patient_returned(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("batch", observation("a", value=118),
+                                              observation("b", value=118, patient="Patient/p2"))), headers=HEADERS)
+    client.get("/fhir/Flag")
+    events = audits(client, "&subtype=search-type")
+    assert len(events) == 2
+    for event in events:
+        AuditEvent.model_validate(event)
+        assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.PatientQuery")
+    assert len(audits(client, "&subtype=search-type&patient=Patient/p2")) == 1
+
+
+def test_flag_read_is_audited(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("batch", observation("a", value=118))), headers=HEADERS)
+    flag = client.get("/fhir/Flag").json()["entry"][0]["resource"]
+    client.get(f"/fhir/Flag/{flag['id']}")
+    (event,) = audits(client, "&subtype=read")
+    assert event["action"] == "R"
+    assert {"reference": f"Flag/{flag['id']}/_history/1"} in [e.get("what") for e in event["entity"]]
+
+
+def test_empty_search_leaves_one_query_audit_without_patient(client: TestClient) -> None:
+    client.get("/fhir/Flag?patient=Patient/nobody")
+    (event,) = audits(client, "&subtype=search-type")
+    assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.Query")
+    assert not any(e.get("role", {}).get("code") == "1" for e in event["entity"])
