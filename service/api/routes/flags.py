@@ -48,9 +48,8 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
     def run() -> tuple[list[bytes], int, list[bytes]]:
         with ctx.db.session() as session:
             key = patient_key_for(session=session, alias=alias) if alias else None
-            if alias and key is None:
-                return [], 0, []
-            rows, total = search_flags(session=session, q=FlagQuery(**{**q.__dict__, "patient_key": key}))
+            rows, total = ([], 0) if alias and key is None else search_flags(
+                session=session, q=FlagQuery(**{**q.__dict__, "patient_key": key}))
             included: list[bytes] = []
             if includes:
                 refs = [e["valueReference"]["reference"] for r in rows for e in orjson.loads(r)["extension"]
