@@ -98,7 +98,6 @@ def verify_minted(session: Session, *, token: str, now: datetime, touch: bool = 
     if touch:
         row.last_used_at = now
         session.add(row)
-    assert row.id is not None  # a stored row has its key
     return Principal(client_id=row.client, grants=parse_scopes(row.scope).grants, kind="minted", token_id=row.id)
 
 

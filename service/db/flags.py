@@ -98,11 +98,13 @@ def write_changes(
                 select(_FLAG).where(_FLAG.c.id == prior.id)).first()
             if row is None:
                 rid, version = str(uuid.uuid4()), 1
-                session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, **values))
+                session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, raised_at=now,
+                                                     **values))
             else:
                 rid, version = row.id, row.version_id + 1
+                raised = {"raised_at": now} if prior is None else {}  # a recurring episode is raised anew
                 session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(
-                    version_id=version, last_updated=now, **values))
+                    version_id=version, last_updated=now, **raised, **values))
             kind = "create" if row is None else ("reactivate" if prior is None else "update")
         else:
             status = "inactive" if isinstance(change, CloseFlag) else "entered-in-error"

@@ -14,6 +14,8 @@ from sqlmodel import Field, SQLModel
 
 __all__ = [
     "AuditRecord",
+    "Escalation",
+    "FlagAck",
     "FhirVersion",
     "FlagRecord",
     "InsulinRecord",
@@ -153,6 +155,7 @@ class FlagRecord(SQLModel, table=True):
     sentence: str
     encounter: str | None = None
     policy_hash: str
+    raised_at: datetime = _utc(nullable=False)  # wall-clock time this episode's flag was (re)raised
     version_id: int = 1
     last_updated: datetime = _utc(nullable=False)
 
@@ -173,3 +176,27 @@ class AuditRecord(SQLModel, table=True):
     patient_key: str | None = None
     outcome: str
     resource: bytes = Field(sa_column=Column(LargeBinary, nullable=False))
+
+
+class FlagAck(SQLModel, table=True):
+    """An acknowledgement of a Flag by the team: who, when, with an optional note."""
+
+    __tablename__ = "flag_ack"
+    __table_args__ = (Index("ix_flag_ack_flag", "flag_id", "acknowledged_at"),)
+    id: str = Field(primary_key=True)
+    flag_id: str
+    flag_version: int
+    acknowledged_at: datetime = _utc(nullable=False)
+    client: str
+    note: str | None = None
+
+
+class Escalation(SQLModel, table=True):
+    """One escalation of an unacknowledged Flag; (flag, round) is unique so no round fires twice."""
+
+    __tablename__ = "flag_escalation"
+    __table_args__ = (UniqueConstraint("flag_id", "round", name="uq_escalation_round"),)
+    id: str = Field(primary_key=True)
+    flag_id: str
+    round: int
+    escalated_at: datetime = _utc(nullable=False)

@@ -13,12 +13,14 @@ from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from service.domain.findings import Priority
 from service.domain.insulin import InsulinCodes
 from service.domain.values import Analyte, Specimen
 
 __all__ = [
     "CrisisRate",
     "Derived",
+    "EscalationPolicy",
     "InsulinMedication",
     "InsulinPotassium",
     "LevelLimit",
@@ -137,6 +139,13 @@ class Derived(_Section):
     show_corrected_sodium_from_glucose: Positive
 
 
+class EscalationPolicy(_Section):
+    """Which unacknowledged Flags are escalated, and how often."""
+
+    priorities: Annotated[tuple[Priority, ...], Field(min_length=1)]
+    unacknowledged_minutes: Positive
+
+
 class InsulinMedication(_Section):
     """Which medication codings count as insulin: ATC prefixes and single "system|code" entries."""
 
@@ -157,6 +166,7 @@ class Policy(_Section):
     crisis: CrisisRate
     insulin_potassium: InsulinPotassium
     insulin: InsulinMedication
+    escalation: EscalationPolicy
 
     @model_validator(mode="after")
     def _check(self) -> Policy:

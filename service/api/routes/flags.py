@@ -11,11 +11,14 @@ from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.api.requester import RequesterDep
 from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.db.acks import acknowledge
 from service.db.audit import record_audit
+from service.db.flags import subjects
 from service.db.reads import FlagQuery, patient_key_for, read_references, search_flags
-from service.errors import Issue, RequestRejected
+from service.errors import Issue, NotFound, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
 from service.fhir.flag_render import FLAG_DETAIL_URL
+from service.fhir.render import fhir_instant
 from service.fhir.search import date_bounds
 
 router = APIRouter()
@@ -84,3 +87,50 @@ def audit_flag_access(ctx: ContextDep, who: Requester, rows: list[bytes], *, sub
                                query=query)
             events.append((facts, patient_key_for(session=session, alias=alias)))
         record_audit(session=session, events=events, base_url=ctx.settings.base_url)
+
+
+@router.post("/fhir/Flag/{flag_id}/$acknowledge")
+async def acknowledge_flag(flag_id: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    """Record that the team has seen this Flag (stops its escalation). Body: optional Parameters with a
+    ``note`` (valueString)."""
+    note = await _ack_note(request)
+    now = ctx.clock.now()
+
+    def run() -> dict[str, object]:
+        with ctx.db.session(write=True) as session:
+            flag = acknowledge(session=session, flag_id=flag_id, client=who.client, note=note, now=now)
+            if flag is None:
+                raise NotFound(f"Flag/{flag_id} is not held here")
+            if flag.status != "active":
+                raise RequestRejected([Issue("business-rule", f"Flag/{flag_id} is {flag.status}; only an active "
+                                             "Flag can be acknowledged", status=409)])
+            subject = subjects(session=session, patient_keys=[flag.patient_key]).get(flag.patient_key, {})
+            facts = AuditFacts(subtype="operation", operation="$acknowledge", recorded=now, requester=who,
+                               patient=subject, what=[f"Flag/{flag_id}/_history/{flag.version_id}"])
+            record_audit(session=session, events=[(facts, flag.patient_key)], base_url=ctx.settings.base_url)
+            return {"resourceType": "Parameters", "parameter": [
+                {"name": "flag", "valueReference": {"reference": f"Flag/{flag_id}/_history/{flag.version_id}"}},
+                {"name": "acknowledged", "valueDateTime": fhir_instant(now)},
+                {"name": "by", "valueString": who.client},
+            ]}
+
+    return fhir_response(await run_in_threadpool(run))
+
+
+async def _ack_note(request: Request) -> str | None:
+    raw = await request.body()
+    if not raw.strip():
+        return None
+    try:
+        body = orjson.loads(raw)
+    except orjson.JSONDecodeError as exc:
+        raise RequestRejected([Issue("structure", f"malformed JSON: {exc}")]) from exc
+    if not isinstance(body, dict) or body.get("resourceType") != "Parameters":
+        raise RequestRejected([Issue("invalid", "$acknowledge takes a Parameters resource", ("Parameters",))])
+    for i, p in enumerate(body.get("parameter") or []):
+        if p.get("name") == "note":
+            if not isinstance(p.get("valueString"), str):
+                raise RequestRejected([Issue("value", "note must be a valueString",
+                                             (f"Parameters.parameter[{i}]",))])
+            return str(p["valueString"])[:2000]
+    return None

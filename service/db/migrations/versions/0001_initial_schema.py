@@ -16,6 +16,21 @@ depends_on = None
 
 def upgrade() -> None:
     
+    op.create_table('audit_event',
+    sa.Column('id', sa.String(), nullable=False),
+    sa.Column('recorded', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('subtype', sa.String(), nullable=False),
+    sa.Column('client', sa.String(), nullable=False),
+    sa.Column('patient_key', sa.String(), nullable=True),
+    sa.Column('outcome', sa.String(), nullable=False),
+    sa.Column('resource', sa.LargeBinary(), nullable=False),
+    sa.PrimaryKeyConstraint('id')
+    )
+    with op.batch_alter_table('audit_event', schema=None) as batch_op:
+        batch_op.create_index('ix_audit_client', ['client', 'recorded'], unique=False)
+        batch_op.create_index('ix_audit_patient', ['patient_key', 'recorded'], unique=False)
+        batch_op.create_index('ix_audit_recorded', ['recorded'], unique=False)
+
     op.create_table('fhir_version',
     sa.Column('resource_type', sa.String(), nullable=False),
     sa.Column('id', sa.String(), nullable=False),
@@ -24,6 +39,50 @@ def upgrade() -> None:
     sa.Column('request_id', sa.Integer(), nullable=True),
     sa.Column('resource', sa.LargeBinary(), nullable=False),
     sa.PrimaryKeyConstraint('resource_type', 'id', 'version_id')
+    )
+    op.create_table('flag',
+    sa.Column('id', sa.String(), nullable=False),
+    sa.Column('patient_key', sa.String(), nullable=False),
+    sa.Column('rule', sa.String(), nullable=False),
+    sa.Column('episode', sa.String(), nullable=False),
+    sa.Column('status', sa.String(), nullable=False),
+    sa.Column('priority', sa.String(), nullable=False),
+    sa.Column('period_start', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('period_end', sa.DateTime(timezone=True), nullable=True),
+    sa.Column('evidence', sa.String(), nullable=False),
+    sa.Column('numbers', sa.String(), nullable=False),
+    sa.Column('sentence', sa.String(), nullable=False),
+    sa.Column('encounter', sa.String(), nullable=True),
+    sa.Column('policy_hash', sa.String(), nullable=False),
+    sa.Column('raised_at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('version_id', sa.Integer(), nullable=False),
+    sa.Column('last_updated', sa.DateTime(timezone=True), nullable=False),
+    sa.PrimaryKeyConstraint('id'),
+    sa.UniqueConstraint('patient_key', 'rule', 'episode', name='uq_flag_episode')
+    )
+    with op.batch_alter_table('flag', schema=None) as batch_op:
+        batch_op.create_index('ix_flag_last_updated', ['last_updated'], unique=False)
+        batch_op.create_index('ix_flag_patient_status', ['patient_key', 'status'], unique=False)
+
+    op.create_table('flag_ack',
+    sa.Column('id', sa.String(), nullable=False),
+    sa.Column('flag_id', sa.String(), nullable=False),
+    sa.Column('flag_version', sa.Integer(), nullable=False),
+    sa.Column('acknowledged_at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('client', sa.String(), nullable=False),
+    sa.Column('note', sa.String(), nullable=True),
+    sa.PrimaryKeyConstraint('id')
+    )
+    with op.batch_alter_table('flag_ack', schema=None) as batch_op:
+        batch_op.create_index('ix_flag_ack_flag', ['flag_id', 'acknowledged_at'], unique=False)
+
+    op.create_table('flag_escalation',
+    sa.Column('id', sa.String(), nullable=False),
+    sa.Column('flag_id', sa.String(), nullable=False),
+    sa.Column('round', sa.Integer(), nullable=False),
+    sa.Column('escalated_at', sa.DateTime(timezone=True), nullable=False),
+    sa.PrimaryKeyConstraint('id'),
+    sa.UniqueConstraint('flag_id', 'round', name='uq_escalation_round')
     )
     op.create_table('insulin_administration',
     sa.Column('id', sa.String(), nullable=False),
@@ -106,5 +165,21 @@ def downgrade() -> None:
         batch_op.drop_index('ix_insulin_patient_start')
 
     op.drop_table('insulin_administration')
+    op.drop_table('flag_escalation')
+    with op.batch_alter_table('flag_ack', schema=None) as batch_op:
+        batch_op.drop_index('ix_flag_ack_flag')
+
+    op.drop_table('flag_ack')
+    with op.batch_alter_table('flag', schema=None) as batch_op:
+        batch_op.drop_index('ix_flag_patient_status')
+        batch_op.drop_index('ix_flag_last_updated')
+
+    op.drop_table('flag')
     op.drop_table('fhir_version')
+    with op.batch_alter_table('audit_event', schema=None) as batch_op:
+        batch_op.drop_index('ix_audit_recorded')
+        batch_op.drop_index('ix_audit_patient')
+        batch_op.drop_index('ix_audit_client')
+
+    op.drop_table('audit_event')
     

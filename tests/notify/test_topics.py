@@ -1,0 +1,327 @@
+"""parse_subscription, matches and topics_fired (Subscriptions R5 Backport IG, backport-subscription)."""
+
+from __future__ import annotations
+
+import copy
+from datetime import UTC, datetime
+from typing import Any
+
+import pytest
+
+from service.errors import Issue
+from service.fhir.flag_render import RULE_SYSTEM, FlagView, render_flag
+from service.notify.topics import (
+    FLAG_CHANGED,
+    FLAG_ESCALATED,
+    FORM_R4,
+    FORM_R4B,
+    TOPICS,
+    Filter,
+    SubscriptionSpec,
+    matches,
+    parse_subscription,
+    topics_fired,
+)
+
+SD = "http://hl7.org/fhir/uv/subscriptions-backport/StructureDefinition"
+
+
+def subscription(**over: Any) -> dict[str, Any]:
+    """A valid backport Subscription (shape of the IG's BackportSubscriptionExampleAdmission)."""
+    sub: dict[str, Any] = {
+        "resourceType": "Subscription",
+        "status": "requested",
+        "reason": "Rapid-response paging for critical electrolyte flags",
+        "criteria": FLAG_CHANGED,
+        "_criteria": {"extension": [
+            {"url": f"{SD}/backport-filter-criteria", "valueString": "Flag?patient=Patient/123&priority=PH"},
+        ]},
+        "channel": {
+            "type": "rest-hook",
+            "endpoint": "https://pager.example.org/hook",
+            "header": ["Authorization: Bearer secret-token", "X-Team: rrt"],
+            "payload": "application/fhir+json",
+            "_payload": {"extension": [{"url": f"{SD}/backport-payload-content", "valueCode": "id-only"}]},
+            "extension": [
+                {"url": f"{SD}/backport-heartbeat-period", "valueUnsignedInt": 60},
+                {"url": f"{SD}/backport-timeout", "valueUnsignedInt": 15},
+                {"url": f"{SD}/backport-max-count", "valuePositiveInt": 5},
+            ],
+        },
+    }
+    sub.update(over)
+    return sub
+
+
+def with_channel(**over: Any) -> dict[str, Any]:
+    sub = subscription()
+    sub["channel"].update(over)
+    return sub
+
+
+def issues_of(result: SubscriptionSpec | list[Issue]) -> list[Issue]:
+    assert isinstance(result, list), f"expected refusal, got {result!r}"
+    assert result, "a refusal must name at least one issue"
+    return result
+
+
+def paths(result: SubscriptionSpec | list[Issue]) -> set[str]:
+    return {e for i in issues_of(result) for e in i.expression}
+
+
+def flag(*, patient: str = "Patient/123", priority: str = "high", rule: str = "sodium-critical-low",
+         status: str = "active", version: int = 1) -> dict[str, Any]:
+    at = datetime(2024, 3, 1, 8, 0, tzinfo=UTC)
+    return render_flag(FlagView(
+        id="f1", version_id=version, last_updated=at, status=status, rule=rule, episode="e1",
+        priority=priority, period_start=at, period_end=None, evidence=["Observation/o1/_history/1"],
+        numbers={"sodium": 118.0}, sentence="Sodium critically low", subject={"reference": patient},
+        encounter=None, policy_hash="h",
+    ))
+
+
+# ---- accepted ---------------------------------------------------------------------------------------
+
+
+def test_valid_subscription_gives_every_field() -> None:
+    spec = parse_subscription(subscription())
+    assert isinstance(spec, SubscriptionSpec), spec
+    assert spec.topic == FLAG_CHANGED
+    assert spec.filters == (Filter("patient", ("Patient/123",)), Filter("priority", ("PH",)))
+    assert spec.endpoint == "https://pager.example.org/hook"
+    assert spec.headers == ("Authorization: Bearer secret-token", "X-Team: rrt")
+    assert spec.payload_mime == "application/fhir+json"
+    assert (spec.content, spec.form) == ("id-only", FORM_R4)
+    assert (spec.heartbeat_period_s, spec.timeout_s, spec.max_count) == (60, 15, 5)
+    with pytest.raises(AttributeError):
+        spec.topic = FLAG_ESCALATED  # type: ignore[misc]  # frozen
+
+
+def test_defaults_when_optional_parts_absent() -> None:
+    sub = subscription()
+    del sub["_criteria"]
+    del sub["channel"]["_payload"], sub["channel"]["extension"], sub["channel"]["header"]
+    spec = parse_subscription(sub)
+    assert isinstance(spec, SubscriptionSpec), spec
+    assert spec.filters == ()
+    assert spec.headers == ()
+    assert spec.content == "id-only"  # IG's balanced default, and ours
+    assert (spec.heartbeat_period_s, spec.timeout_s, spec.max_count) == (None, None, None)
+
+
+@pytest.mark.parametrize(("mime", "form"), [
+    ("application/fhir+json", FORM_R4),
+    ("application/fhir+json; fhirVersion=4.0", FORM_R4),
+    ("application/fhir+json;fhirVersion=4.3", FORM_R4B),
+    ("application/fhir+json; charset=utf-8; fhirVersion=4.3", FORM_R4B),
+])
+def test_payload_mime_picks_the_notification_form(mime: str, form: str) -> None:
+    spec = parse_subscription(with_channel(payload=mime))
+    assert isinstance(spec, SubscriptionSpec), spec
+    assert spec.form == form
+    assert spec.payload_mime == mime  # sent back verbatim as Content-Type
+
+
+def test_several_filter_extensions_and_comma_values() -> None:
+    sub = subscription()
+    sub["_criteria"]["extension"] = [
+        {"url": f"{SD}/backport-filter-criteria", "valueString": "Flag?priority=PH,PM"},
+        {"url": f"{SD}/backport-filter-criteria", "valueString": f"Flag?code={RULE_SYSTEM}|sodium-critical-low"},
+    ]
+    spec = parse_subscription(sub)
+    assert isinstance(spec, SubscriptionSpec), spec
+    assert spec.filters == (Filter("priority", ("PH", "PM")),
+                            Filter("code", (f"{RULE_SYSTEM}|sodium-critical-low",)))
+
+
+def test_http_endpoint_only_with_allow_http() -> None:
+    sub = with_channel(endpoint="http://127.0.0.1:8123/hook")
+    assert paths(parse_subscription(sub)) == {"Subscription.channel.endpoint"}
+    spec = parse_subscription(sub, allow_http=True)
+    assert isinstance(spec, SubscriptionSpec) and spec.endpoint == "http://127.0.0.1:8123/hook"
+
+
+# ---- refused, each with its FHIRPath -------------------------------------------------------------------
+
+
+def test_plain_http_refused() -> None:
+    [issue] = issues_of(parse_subscription(with_channel(endpoint="http://pager.example.org/hook")))
+    assert issue.expression == ("Subscription.channel.endpoint",)
+    assert "https" in issue.message
+
+
+@pytest.mark.parametrize("endpoint", ["pager.example.org/hook", "ftp://pager.example.org/x", "https://",
+                                      "https://user:pw@pager.example.org/hook", ""])
+def test_bad_endpoints_refused(endpoint: str) -> None:
+    assert paths(parse_subscription(with_channel(endpoint=endpoint))) == {"Subscription.channel.endpoint"}
+
+
+def test_unknown_topic_refused() -> None:
+    [issue] = issues_of(parse_subscription(subscription(criteria="Flag?category=clinical")))
+    assert issue.expression == ("Subscription.criteria",)
+    assert issue.code == "not-supported"
+    assert FLAG_CHANGED in issue.message  # tells the subscriber what is offered
+
+
+def test_unknown_filter_refused() -> None:
+    sub = subscription()
+    sub["_criteria"]["extension"][0]["valueString"] = "Flag?patient=Patient/123&category=clinical"
+    [issue] = issues_of(parse_subscription(sub))
+    assert issue.expression == ("Subscription.criteria.extension[0]",)
+    assert "'category'" in issue.message
+
+
+@pytest.mark.parametrize("criteria", [
+    "Observation?patient=Patient/1", "patient=Patient/1", "Flag?patient", "Flag?priority=HIGH",
+    "Flag?code=no-such-rule", "Flag?code=http://loinc.org|2951-2", "Flag?patient=Group/7",
+    "Flag?patient:missing=true",
+])
+def test_bad_filter_values_refused(criteria: str) -> None:
+    sub = subscription()
+    sub["_criteria"]["extension"][0]["valueString"] = criteria
+    assert paths(parse_subscription(sub)) == {"Subscription.criteria.extension[0]"}
+
+
+@pytest.mark.parametrize("content", ["full", "ID-ONLY", None])
+def test_bad_payload_content_refused(content: str | None) -> None:
+    sub = subscription()
+    sub["channel"]["_payload"]["extension"][0]["valueCode"] = content
+    assert paths(parse_subscription(sub)) == {"Subscription.channel.payload.extension[0]"}
+
+
+@pytest.mark.parametrize("ctype", ["websocket", "email", "message", None])
+def test_bad_channel_type_refused(ctype: str | None) -> None:
+    [issue] = issues_of(parse_subscription(with_channel(type=ctype)))
+    assert issue.expression == ("Subscription.channel.type",)
+    assert "rest-hook" in issue.message
+
+
+def test_custom_channel_type_refused() -> None:
+    sub = with_channel(_type={"extension": [{"url": f"{SD}/backport-channel-type",
+                                             "valueCoding": {"system": "https://x.example", "code": "chat"}}]})
+    assert paths(parse_subscription(sub)) == {"Subscription.channel.type.extension"}
+
+
+@pytest.mark.parametrize("payload", ["application/fhir+xml", "application/json", None,
+                                     "application/fhir+json; fhirVersion=5.0"])
+def test_bad_payload_mime_refused(payload: str | None) -> None:
+    assert paths(parse_subscription(with_channel(payload=payload))) == {"Subscription.channel.payload"}
+
+
+@pytest.mark.parametrize("header", ["no-colon", "Bad Name: x", "X-A: one\r\nX-B: two", "Content-Type: text/plain"])
+def test_bad_header_refused_without_echoing_it(header: str) -> None:
+    [issue] = issues_of(parse_subscription(with_channel(header=["X-Ok: 1", header])))
+    assert issue.expression == ("Subscription.channel.header[1]",)
+    value = header.partition(":")[2].strip()
+    if value:
+        assert value not in issue.message  # header values may be credentials
+
+
+def test_bad_channel_extension_values_refused() -> None:
+    sub = subscription()
+    sub["channel"]["extension"] = [
+        {"url": f"{SD}/backport-heartbeat-period", "valueUnsignedInt": -1},
+        {"url": f"{SD}/backport-timeout", "valueUnsignedInt": "15"},
+        {"url": f"{SD}/backport-max-count", "valuePositiveInt": 0},
+    ]
+    assert paths(parse_subscription(sub)) == {f"Subscription.channel.extension[{i}]" for i in range(3)}
+
+
+def test_every_problem_reported_at_once() -> None:
+    sub = subscription(criteria="https://elsewhere.example/topic", reason="")
+    sub["channel"].update(type="email", endpoint="http://x.example/", payload="text/plain")
+    assert paths(parse_subscription(sub)) == {
+        "Subscription.criteria", "Subscription.reason", "Subscription.channel.type",
+        "Subscription.channel.endpoint", "Subscription.channel.payload",
+    }
+
+
+def test_not_a_subscription_or_no_channel() -> None:
+    assert paths(parse_subscription({"resourceType": "Flag"})) == {"Subscription"}
+    sub = subscription()
+    del sub["channel"]
+    assert paths(parse_subscription(sub)) == {"Subscription.channel"}
+
+
+# ---- matches ----------------------------------------------------------------------------------------
+
+
+def spec_with(*criteria: str) -> SubscriptionSpec:
+    sub = subscription()
+    sub["_criteria"]["extension"] = [{"url": f"{SD}/backport-filter-criteria", "valueString": c}
+                                     for c in criteria]
+    spec = parse_subscription(sub)
+    assert isinstance(spec, SubscriptionSpec), spec
+    return spec
+
+
+def test_no_filters_match_everything() -> None:
+    assert matches(spec_with(), flag())
+    assert matches(spec_with(), flag(patient="Patient/999", priority="low"))
+
+
+def test_patient_filter() -> None:
+    spec = spec_with("Flag?patient=Patient/123")
+    assert matches(spec, flag(patient="Patient/123"))
+    assert matches(spec, flag(patient="https://ehr.example/fhir/Patient/123"))  # absolute reference
+    assert not matches(spec, flag(patient="Patient/1234"))
+    assert matches(spec_with("Flag?patient=123"), flag(patient="Patient/123"))  # bare id means Patient/
+    # A subject known only by identifier has no reference to compare.
+    by_identifier = flag()
+    by_identifier["subject"] = {"identifier": {"system": "urn:mrn", "value": "123"}}
+    assert not matches(spec, by_identifier)
+
+
+def test_priority_filter_with_or_values() -> None:
+    spec = spec_with("Flag?priority=PH,PM")
+    assert matches(spec, flag(priority="high"))
+    assert matches(spec, flag(priority="medium"))
+    assert not matches(spec, flag(priority="low"))
+
+
+def test_code_filter_token_forms() -> None:
+    low = flag(rule="sodium-critical-low")
+    assert matches(spec_with("Flag?code=sodium-critical-low"), low)
+    assert matches(spec_with(f"Flag?code={RULE_SYSTEM}|sodium-critical-low"), low)
+    assert not matches(spec_with("Flag?code=|sodium-critical-low"), low)  # `|code` = no system
+    assert not matches(spec_with("Flag?code=potassium-critical-high"), low)
+
+
+def test_filters_are_anded_across_extensions_and_within_one() -> None:
+    one = spec_with("Flag?patient=Patient/123&priority=PH")
+    two = spec_with("Flag?patient=Patient/123", "Flag?priority=PH")
+    for spec in (one, two):
+        assert matches(spec, flag(patient="Patient/123", priority="high"))
+        assert not matches(spec, flag(patient="Patient/123", priority="medium"))
+        assert not matches(spec, flag(patient="Patient/9", priority="high"))
+
+
+# ---- topics -----------------------------------------------------------------------------------------
+
+
+def test_topic_canonicals_live_under_our_base() -> None:
+    assert set(TOPICS) == {FLAG_CHANGED, FLAG_ESCALATED}
+    assert FLAG_CHANGED == "https://lytestream.example/fhir/SubscriptionTopic/flag-changed"
+    assert all(t.filters == {"patient", "priority", "code"} for t in TOPICS.values())
+
+
+def test_escalated_topic_accepted_and_fired() -> None:
+    spec = parse_subscription(subscription(criteria=FLAG_ESCALATED))
+    assert isinstance(spec, SubscriptionSpec) and spec.topic == FLAG_ESCALATED
+
+
+@pytest.mark.parametrize(("kind", "before", "after", "expected"), [
+    ("create", None, "medium", {FLAG_CHANGED, FLAG_ESCALATED}),
+    ("reactivate", None, "low", {FLAG_CHANGED, FLAG_ESCALATED}),
+    ("update", "medium", "high", {FLAG_CHANGED, FLAG_ESCALATED}),
+    ("update", "high", "medium", {FLAG_CHANGED}),
+    ("update", "high", "high", {FLAG_CHANGED}),
+    ("update", None, "high", {FLAG_CHANGED}),  # no prior version given: cannot call it a rise
+    ("close", "high", "high", {FLAG_CHANGED}),
+    ("withdraw", "high", "high", {FLAG_CHANGED}),
+])
+def test_topics_fired(kind: str, before: str | None, after: str, expected: set[str]) -> None:
+    status = {"close": "inactive", "withdraw": "entered-in-error"}.get(kind, "active")
+    current = flag(priority=after, status=status, version=2)
+    previous = flag(priority=before) if before else None
+    assert set(topics_fired(kind, current, copy.deepcopy(previous))) == expected
