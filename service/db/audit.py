@@ -26,7 +26,7 @@ def record_audit(*, session: Session, events: Iterable[tuple[AuditFacts, str | N
         rid = str(uuid.uuid4())
         body = audit_event(facts, base_url=base_url)
         body["id"] = rid
-        rows.append({"id": rid, "recorded": facts.recorded, "subtype": facts.operation or facts.subtype,
+        rows.append({"id": rid, "recorded": facts.recorded, "subtype": (facts.operation or facts.subtype).lstrip("$"),
                      "client": facts.requester.client, "patient_key": patient_key, "outcome": facts.outcome,
                      "resource": orjson.dumps(body)})
     if rows:
