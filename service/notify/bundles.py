@@ -122,7 +122,11 @@ def heartbeat(state: SubscriptionState, *, now: datetime, new_id: IdFactory = _n
 
 
 def event_notification(
-    state: SubscriptionState, events: Sequence[NotificationEvent], *, now: datetime, new_id: IdFactory = _new_id
+    state: SubscriptionState,
+    events: Sequence[NotificationEvent],
+    *,
+    now: datetime,
+    new_id: IdFactory = _new_id,
 ) -> dict[str, Any]:
     """An event-notification Bundle for ``events`` (at least one)."""
     if not events:
@@ -205,7 +209,8 @@ def _focus_entry(state: SubscriptionState, e: NotificationEvent) -> dict[str, An
     if e.last_updated is not None:
         response["lastModified"] = fhir_instant(e.last_updated)
     # fullUrl is never version-specific (FHIR R4 bdl-8); the version travels in response.etag.
-    entry: dict[str, Any] = {"fullUrl": f"{state.base}/{rtype}/{rid}", "request": request, "response": response}
+    entry: dict[str, Any] = {"fullUrl": f"{state.base}/{rtype}/{rid}", "request": request,
+                             "response": response}
     if state.content == "full-resource":
         if e.resource is None:
             raise ValueError(f"full-resource content needs the resource of event {e.number}")

@@ -176,7 +176,9 @@ def _patient_key(ref: str) -> str:
 # ---- parsing ----------------------------------------------------------------------------------------
 
 
-def parse_subscription(resource: Mapping[str, Any], *, allow_http: bool = False) -> SubscriptionSpec | list[Issue]:
+def parse_subscription(
+    resource: Mapping[str, Any], *, allow_http: bool = False
+) -> SubscriptionSpec | list[Issue]:
     """Validate an R4 Subscription carrying the backport extensions; a spec, or every problem found.
 
     ``allow_http`` admits plain-http endpoints (loopback tests only: the IG strongly recommends
@@ -240,7 +242,8 @@ def _criteria(resource: Mapping[str, Any], issues: list[Issue]) -> tuple[str | N
         issues.append(_bad("required", "criteria must be the canonical URL of a topic", "criteria"))
     elif topic is None:
         known = ", ".join(sorted(TOPICS))
-        issues.append(_bad("not-supported", f"unknown topic {criteria!r}; topics offered: {known}", "criteria"))
+        issues.append(_bad("not-supported", f"unknown topic {criteria!r}; topics offered: {known}",
+                           "criteria"))
     filters: list[Filter] = []
     extensions = (resource.get("_criteria") or {}).get("extension") or []
     for i, ext in enumerate(extensions):
@@ -303,7 +306,8 @@ def _channel_type(channel: Mapping[str, Any], issues: list[Issue]) -> None:
     if ctype != "rest-hook":
         issues.append(_bad("not-supported", f"channel.type {ctype!r} is not offered; only rest-hook",
                            "channel.type"))
-    custom = [e for e in (channel.get("_type") or {}).get("extension") or () if e.get("url") == CHANNEL_TYPE_URL]
+    type_extensions = (channel.get("_type") or {}).get("extension") or ()
+    custom = [e for e in type_extensions if e.get("url") == CHANNEL_TYPE_URL]
     if custom:
         issues.append(_bad("not-supported", "custom channel types (backport-channel-type) are not offered",
                            "channel.type.extension"))
@@ -349,7 +353,8 @@ def _headers(raw: Any, issues: list[Issue]) -> tuple[str, ...]:
 
 def _payload(raw: Any, issues: list[Issue]) -> tuple[str | None, str | None]:
     if not isinstance(raw, str) or not raw.strip():
-        issues.append(_bad("required", f"channel.payload is required (backport-subscription 1..1): {FHIR_JSON}",
+        issues.append(_bad("required", f"channel.payload is required (backport-subscription 1..1): "
+                           f"{FHIR_JSON}",
                            "channel.payload"))
         return None, None
     mime, *params = (p.strip() for p in raw.split(";"))
@@ -363,7 +368,8 @@ def _payload(raw: Any, issues: list[Issue]) -> tuple[str | None, str | None]:
         if key.strip().lower() == "fhirversion":
             chosen = _FORMS.get(value.strip().strip('"'))
             if chosen is None:
-                issues.append(_bad("not-supported", f"fhirVersion {value.strip()!r} is not offered; use 4.0 or 4.3",
+                issues.append(_bad("not-supported",
+                                   f"fhirVersion {value.strip()!r} is not offered; use 4.0 or 4.3",
                                    "channel.payload"))
                 return None, None
             form = chosen
@@ -382,7 +388,9 @@ def _content(raw: Any, issues: list[Issue]) -> str:
     return DEFAULT_CONTENT
 
 
-def _channel_int(channel: Mapping[str, Any], url: str, key: str, minimum: int, issues: list[Issue]) -> int | None:
+def _channel_int(
+    channel: Mapping[str, Any], url: str, key: str, minimum: int, issues: list[Issue]
+) -> int | None:
     for i, ext in enumerate(channel.get("extension") or ()):
         if isinstance(ext, Mapping) and ext.get("url") == url:
             value = ext.get(key)

@@ -91,6 +91,13 @@ def test_measured_and_calculated_osmolality_are_never_mixed_in_one_rate() -> Non
     assert Rule.OSMOLALITY_FALL_TOO_FAST not in findings(osm(330, 0), glu(30, 0), na(140, 2), glu(30, 2))
 
 
+def test_a_later_calculated_point_does_not_hide_a_measured_fall() -> None:
+    # clinical-reference §5 rate example (360 -> 340 mOsm/kg over 2 h = 10/h > 8), then a sodium and a
+    # glucose drawn 40 min later with no measured osmolality: the measured series still decides.
+    fall = findings(osm(360, 0), glu(40, 0), osm(340, 2), na(150, 2.67), glu(30, 2.67))
+    assert fall[Rule.OSMOLALITY_FALL_TOO_FAST].sentence.startswith("Effective osmolality (measured)")
+
+
 def test_falling_glucose_sentence_shows_corrected_sodium_when_glucose_is_high() -> None:
     # Katz 1973 via clinical-reference §4: Na 130 with glucose 28 -> 130 + 1.6*(28-5.55074)/5.55074
     expected = 130 + 1.6 * (28 - 5.55074) / 5.55074

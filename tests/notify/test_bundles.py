@@ -2,7 +2,8 @@
 
 Shapes: Subscriptions R5 Backport IG — backport-subscription-notification-r4 / backport-subscription-status-r4
 (R4 Parameters form), backport-subscription-notification (R4B SubscriptionStatus form), OperationDefinitions
-backport-subscription-status and backport-subscription-events. History Bundle rules: FHIR R4 bdl-3/bdl-4/bdl-8.
+backport-subscription-status and backport-subscription-events.
+History Bundle rules: FHIR R4 bdl-3/bdl-4/bdl-8.
 """
 
 from __future__ import annotations
@@ -55,7 +56,8 @@ def validate(bundle: dict[str, Any]) -> Any:
             assert "request" in e and "response" in e, f"bdl-3/bdl-4: entry[{i}] needs request and response"
             assert "/_history/" not in e.get("fullUrl", ""), "bdl-8: fullUrl is never version-specific"
     else:
-        assert all("request" not in e for e in bundle["entry"]), "bdl-3: request only in batch/transaction/history"
+        assert all("request" not in e for e in bundle["entry"]), \
+            "bdl-3: request only in batch/transaction/history"
     return model
 
 
@@ -119,7 +121,8 @@ def test_status_response_is_a_searchset_of_query_status(form: str) -> None:
         assert params(second, "notification-event") == []
     else:
         assert (second["type"], second["eventsSinceSubscriptionStart"]) == ("query-status", "7")
-        assert second["error"][0]["coding"][0]["system"] == "http://terminology.hl7.org/CodeSystem/subscription-error"
+        assert second["error"][0]["coding"][0]["system"] == \
+            "http://terminology.hl7.org/CodeSystem/subscription-error"
         assert "notificationEvent" not in second
 
 
@@ -197,7 +200,8 @@ def test_empty_content_has_no_focus_topic_or_other_entries(form: str) -> None:
 def test_handshake_and_heartbeat_have_no_events(form: str) -> None:
     hs = handshake(state(form, status="requested", count=0), now=NOW)
     hb = heartbeat(state(form, count=5), now=NOW)
-    for bundle, kind, count, status in ((hs, "handshake", "0", "requested"), (hb, "heartbeat", "5", "active")):
+    cases = ((hs, "handshake", "0", "requested"), (hb, "heartbeat", "5", "active"))
+    for bundle, kind, count, status in cases:
         assert len(bundle["entry"]) == 1
         s = status_of(bundle)
         if form == FORM_R4:

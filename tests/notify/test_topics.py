@@ -126,7 +126,8 @@ def test_several_filter_extensions_and_comma_values() -> None:
     sub = subscription()
     sub["_criteria"]["extension"] = [
         {"url": f"{SD}/backport-filter-criteria", "valueString": "Flag?priority=PH,PM"},
-        {"url": f"{SD}/backport-filter-criteria", "valueString": f"Flag?code={RULE_SYSTEM}|sodium-critical-low"},
+        {"url": f"{SD}/backport-filter-criteria",
+         "valueString": f"Flag?code={RULE_SYSTEM}|sodium-critical-low"},
     ]
     spec = parse_subscription(sub)
     assert isinstance(spec, SubscriptionSpec), spec
@@ -197,8 +198,9 @@ def test_bad_channel_type_refused(ctype: str | None) -> None:
 
 
 def test_custom_channel_type_refused() -> None:
-    sub = with_channel(_type={"extension": [{"url": f"{SD}/backport-channel-type",
-                                             "valueCoding": {"system": "https://x.example", "code": "chat"}}]})
+    coding = {"system": "https://x.example", "code": "chat"}
+    custom = {"url": f"{SD}/backport-channel-type", "valueCoding": coding}
+    sub = with_channel(_type={"extension": [custom]})
     assert paths(parse_subscription(sub)) == {"Subscription.channel.type.extension"}
 
 
@@ -208,7 +210,8 @@ def test_bad_payload_mime_refused(payload: str | None) -> None:
     assert paths(parse_subscription(with_channel(payload=payload))) == {"Subscription.channel.payload"}
 
 
-@pytest.mark.parametrize("header", ["no-colon", "Bad Name: x", "X-A: one\r\nX-B: two", "Content-Type: text/plain"])
+@pytest.mark.parametrize("header", ["no-colon", "Bad Name: x", "X-A: one\r\nX-B: two",
+                                    "Content-Type: text/plain"])
 def test_bad_header_refused_without_echoing_it(header: str) -> None:
     [issue] = issues_of(parse_subscription(with_channel(header=["X-Ok: 1", header])))
     assert issue.expression == ("Subscription.channel.header[1]",)

@@ -56,19 +56,24 @@ def evaluate_crisis_rate(results: Sequence[LabResult], policy: Policy, patient: 
         _Point(g.effective, g.value or 0.0, "measured", (g,), g.encounter) for g in exact(glucose_all)
     ]
     findings = []
-    for rule, points, limit, unit, name in (
+    # Measured and calculated osmolality are separate series: a calculated point drawn after the
+    # last measured one must not hide a measured fall (nor the reverse). Measured wins when both fire.
+    osmolality_series = [[p for p in osmolality if p.kind == kind] for kind in ("measured", "calculated")]
+    for rule, series, limit, unit, name in (
         (
             Rule.OSMOLALITY_FALL_TOO_FAST,
-            osmolality,
+            osmolality_series,
             policy.crisis.osmolality_max_fall_per_hour,
             "mOsm/kg",
             "Effective osmolality",
         ),
-        (Rule.GLUCOSE_FALL_TOO_FAST, glucose, policy.crisis.glucose_max_fall_per_hour, "mmol/L", "Glucose"),
+        (Rule.GLUCOSE_FALL_TOO_FAST, [glucose], policy.crisis.glucose_max_fall_per_hour, "mmol/L", "Glucose"),
     ):
-        finding = _fall(rule, points, limit, unit, name, glucose_all, sodium, policy, patient)
-        if finding is not None:
-            findings.append(finding)
+        for points in series:
+            finding = _fall(rule, points, limit, unit, name, glucose_all, sodium, policy, patient)
+            if finding is not None:
+                findings.append(finding)
+                break
     return findings
 
 

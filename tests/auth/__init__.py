@@ -1,0 +1,1 @@
+"""Access control: scopes, tokens, JWT verification, FastAPI dependencies, the token CLI."""
