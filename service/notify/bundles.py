@@ -98,6 +98,16 @@ class NotificationEvent:
     resource: Mapping[str, Any] | None = None
     additional_context: tuple[str, ...] = field(default=())  # relative references, status only
 
+    def __post_init__(self) -> None:
+        for ref in (self.focus, *self.additional_context):
+            rtype, slash, rid = ref.partition("/")
+            if not slash or not rtype or not rid or "/" in rid:
+                raise ValueError("references must be relative 'Type/id' (no base, no history)")
+        if self.interaction not in ("create", "update"):
+            raise ValueError("interaction must be create or update")
+        if self.number < 1:
+            raise ValueError("event numbers start at 1")
+
 
 def interaction_for(kind: str) -> str:
     """A FlagWrite kind (create | reactivate | update | close | withdraw) → create | update."""

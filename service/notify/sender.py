@@ -28,7 +28,8 @@ _RETRYABLE_4XX = frozenset({408, 429})
 class DeliveryOutcome:
     ok: bool
     status: int | None  # the HTTP status, None when no response arrived
-    # None when ok; else timeout | connect | transport | http-3xx | http-4xx | http-5xx | invalid-header
+    # None when ok; else timeout | connect | transport | http-3xx | http-4xx | http-5xx
+    # | invalid-header | invalid-endpoint
     error: str | None
     retryable: bool
     elapsed_ms: int
@@ -45,6 +46,8 @@ def deliver(
     timeout_s: float,
 ) -> DeliveryOutcome:
     """POST ``body`` to ``endpoint``; classify what happened. Never raises for network trouble."""
+    if timeout_s <= 0:
+        raise ValueError("timeout_s must be positive")
     started = time.perf_counter()
     try:
         pairs = [parse_header(h) for h in headers]
@@ -55,6 +58,8 @@ def deliver(
     try:
         response = client.post(endpoint, content=body, headers=pairs, timeout=httpx.Timeout(timeout_s),
                                follow_redirects=False)
+    except (httpx.InvalidURL, httpx.UnsupportedProtocol):  # a stored endpoint we cannot use at all
+        return DeliveryOutcome(False, None, "invalid-endpoint", False, _ms(started))
     except httpx.TimeoutException:  # connect, read, write or pool timeout
         return DeliveryOutcome(False, None, "timeout", True, _ms(started))
     except httpx.ConnectError:  # refused, unreachable, DNS failure, TLS handshake failure

@@ -36,7 +36,6 @@ __all__ = [
     "Topic",
     "matches",
     "parse_subscription",
-    "topics_fired",
 ]
 
 BACKPORT_SD = "http://hl7.org/fhir/uv/subscriptions-backport/StructureDefinition"
@@ -82,7 +81,8 @@ TOPICS: Mapping[str, Topic] = {
               "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn.",
               _FLAG_FILTERS),
         Topic(FLAG_ESCALATED, "Flag escalated",
-              "A Flag newly raised or re-raised, or updated to a higher priority.", _FLAG_FILTERS),
+              "A Flag of an escalated priority left unacknowledged past the policy interval; one event "
+              "per interval until it is acknowledged or closed.", _FLAG_FILTERS),
     )
 }
 
@@ -113,28 +113,11 @@ class SubscriptionSpec:
     reason: str
 
 
-def topics_fired(kind: str, flag: Mapping[str, Any], previous: Mapping[str, Any] | None) -> tuple[str, ...]:
-    """The topics one written Flag version triggers.
-
-    ``kind`` is the write kind (create | reactivate | update | close | withdraw); ``previous`` is the
-    prior version's Flag JSON when there was one: escalation needs it to compare priorities.
-    """
-    fired = [FLAG_CHANGED]
-    if kind in ("create", "reactivate") and flag.get("status") == "active":
-        fired.append(FLAG_ESCALATED)
-    elif kind == "update" and previous is not None and flag.get("status") == "active":
-        before = max((_PRIORITY_RANK.get(c, 0) for c in _priority_codes(previous)), default=0)
-        after = max((_PRIORITY_RANK.get(c, 0) for c in _priority_codes(flag)), default=0)
-        if after > before:
-            fired.append(FLAG_ESCALATED)
-    return tuple(fired)
-
-
 # ---- matching ---------------------------------------------------------------------------------------
 
 
 def matches(spec: SubscriptionSpec, flag: Mapping[str, Any]) -> bool:
-    """Does this Flag JSON pass every filter of ``spec``? (Topic membership is decided by topics_fired.)"""
+    """Does this Flag JSON pass every filter of ``spec``? (Each topic has its own event source.)"""
     return all(any(_match_one(f.name, v, flag) for v in f.values) for f in spec.filters)
 
 
@@ -226,6 +209,19 @@ def _bad(code: str, message: str, path: str) -> Issue:
     return Issue(code, message, (f"Subscription.{path}",))
 
 
+def _extensions(holder: Any, path: str, issues: list[Issue]) -> list[Any]:
+    """``holder.extension`` as a list; a wrongly shaped one is reported rather than silently skipped."""
+    if holder is None:
+        return []
+    extensions = holder.get("extension") if isinstance(holder, Mapping) else None
+    if extensions is None and isinstance(holder, Mapping):
+        return []
+    if not isinstance(extensions, list):
+        issues.append(_bad("structure", "extension must be a list of extensions", f"{path}.extension"))
+        return []
+    return extensions
+
+
 def _is_instant(value: Any) -> bool:
     if not isinstance(value, str) or "T" not in value:
         return False
@@ -245,7 +241,7 @@ def _criteria(resource: Mapping[str, Any], issues: list[Issue]) -> tuple[str | N
         issues.append(_bad("not-supported", f"unknown topic {criteria!r}; topics offered: {known}",
                            "criteria"))
     filters: list[Filter] = []
-    extensions = (resource.get("_criteria") or {}).get("extension") or []
+    extensions = _extensions(resource.get("_criteria"), "criteria", issues)
     for i, ext in enumerate(extensions):
         if not isinstance(ext, Mapping) or ext.get("url") != FILTER_CRITERIA_URL:
             continue  # other extensions on criteria are not modifiers: ignoring them is allowed
@@ -306,8 +302,8 @@ def _channel_type(channel: Mapping[str, Any], issues: list[Issue]) -> None:
     if ctype != "rest-hook":
         issues.append(_bad("not-supported", f"channel.type {ctype!r} is not offered; only rest-hook",
                            "channel.type"))
-    type_extensions = (channel.get("_type") or {}).get("extension") or ()
-    custom = [e for e in type_extensions if e.get("url") == CHANNEL_TYPE_URL]
+    type_extensions = _extensions(channel.get("_type"), "channel.type", issues)
+    custom = [e for e in type_extensions if isinstance(e, Mapping) and e.get("url") == CHANNEL_TYPE_URL]
     if custom:
         issues.append(_bad("not-supported", "custom channel types (backport-channel-type) are not offered",
                            "channel.type.extension"))
@@ -377,7 +373,7 @@ def _payload(raw: Any, issues: list[Issue]) -> tuple[str | None, str | None]:
 
 
 def _content(raw: Any, issues: list[Issue]) -> str:
-    for i, ext in enumerate((raw or {}).get("extension") or ()):
+    for i, ext in enumerate(_extensions(raw, "channel.payload", issues)):
         if isinstance(ext, Mapping) and ext.get("url") == PAYLOAD_CONTENT_URL:
             code = ext.get("valueCode")
             if code not in CONTENT_CODES:
@@ -391,7 +387,7 @@ def _content(raw: Any, issues: list[Issue]) -> str:
 def _channel_int(
     channel: Mapping[str, Any], url: str, key: str, minimum: int, issues: list[Issue]
 ) -> int | None:
-    for i, ext in enumerate(channel.get("extension") or ()):
+    for i, ext in enumerate(_extensions(channel, "channel", issues)):
         if isinstance(ext, Mapping) and ext.get("url") == url:
             value = ext.get(key)
             if isinstance(value, bool) or not isinstance(value, int) or value < minimum:

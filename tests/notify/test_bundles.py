@@ -249,3 +249,13 @@ def test_refuses_nonsense_state_and_empty_event_list() -> None:
                                                    ("withdraw", "update")])
 def test_interaction_for_write_kinds(kind: str, interaction: str) -> None:
     assert interaction_for(kind) == interaction
+
+
+@pytest.mark.parametrize("over", [dict(focus="https://x.example/fhir/Flag/f1"),
+                                  dict(focus="Flag/f1/_history/2"), dict(focus="f1"),
+                                  dict(additional_context=("Observation",)),
+                                  dict(interaction="delete"), dict(number=0)])
+def test_notification_event_refuses_bad_values(over: dict[str, Any]) -> None:
+    fields: dict[str, Any] = dict(number=1, timestamp=NOW, focus="Flag/f1") | over
+    with pytest.raises(ValueError):
+        NotificationEvent(**fields)

@@ -149,3 +149,15 @@ def test_nothing_secret_is_logged_or_kept(router: respx.MockRouter, client: http
     out = send(client)
     assert SECRET not in caplog.text and BODY.decode() not in caplog.text
     assert SECRET not in repr(out) and "resourceType" not in repr(out)
+
+
+@pytest.mark.parametrize("endpoint", ["ftp://pager.example.org/hook", "https://pager.example.org:port/x",
+                                      "https:///hook"])
+def test_unusable_endpoint_not_retryable(client: httpx.Client, endpoint: str) -> None:
+    out = deliver(client, endpoint=endpoint, headers=[], content_type=MIME, body=BODY, timeout_s=1.0)
+    assert (out.ok, out.status, out.error, out.retryable) == (False, None, "invalid-endpoint", False)
+
+
+def test_non_positive_timeout_is_a_programming_error(client: httpx.Client) -> None:
+    with pytest.raises(ValueError):
+        deliver(client, endpoint=HOOK, headers=[], content_type=MIME, body=BODY, timeout_s=0)

@@ -1,4 +1,4 @@
-"""parse_subscription, matches and topics_fired (Subscriptions R5 Backport IG, backport-subscription)."""
+"""parse_subscription and matches (Subscriptions R5 Backport IG, backport-subscription)."""
 
 from __future__ import annotations
 
@@ -7,6 +7,8 @@ from datetime import UTC, datetime
 from typing import Any
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from service.errors import Issue
 from service.fhir.flag_render import RULE_SYSTEM, FlagView, render_flag
@@ -20,7 +22,6 @@ from service.notify.topics import (
     SubscriptionSpec,
     matches,
     parse_subscription,
-    topics_fired,
 )
 
 SD = "http://hl7.org/fhir/uv/subscriptions-backport/StructureDefinition"
@@ -313,18 +314,45 @@ def test_escalated_topic_accepted_and_fired() -> None:
     assert isinstance(spec, SubscriptionSpec) and spec.topic == FLAG_ESCALATED
 
 
-@pytest.mark.parametrize(("kind", "before", "after", "expected"), [
-    ("create", None, "medium", {FLAG_CHANGED, FLAG_ESCALATED}),
-    ("reactivate", None, "low", {FLAG_CHANGED, FLAG_ESCALATED}),
-    ("update", "medium", "high", {FLAG_CHANGED, FLAG_ESCALATED}),
-    ("update", "high", "medium", {FLAG_CHANGED}),
-    ("update", "high", "high", {FLAG_CHANGED}),
-    ("update", None, "high", {FLAG_CHANGED}),  # no prior version given: cannot call it a rise
-    ("close", "high", "high", {FLAG_CHANGED}),
-    ("withdraw", "high", "high", {FLAG_CHANGED}),
-])
-def test_topics_fired(kind: str, before: str | None, after: str, expected: set[str]) -> None:
-    status = {"close": "inactive", "withdraw": "entered-in-error"}.get(kind, "active")
-    current = flag(priority=after, status=status, version=2)
-    previous = flag(priority=before) if before else None
-    assert set(topics_fired(kind, current, copy.deepcopy(previous))) == expected
+# ---- robustness -------------------------------------------------------------------------------------
+
+
+def test_fixture_is_a_valid_r4b_subscription() -> None:
+    # Guards the tests above: the accepted shape is a real (R4-style) Subscription with the IG's extensions.
+    from fhir.resources.R4B import get_fhir_model_class
+
+    get_fhir_model_class("Subscription").model_validate(subscription())
+
+
+_JSON = st.recursive(
+    st.none() | st.booleans() | st.integers(-3, 3) | st.text(max_size=8),
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=6), inner, max_size=3),
+    max_leaves=6,
+)
+_PLACES = [("criteria",), ("_criteria",), ("_criteria", "extension"), ("reason",), ("end",), ("status",),
+           ("channel",), ("channel", "type"), ("channel", "_type"), ("channel", "endpoint"),
+           ("channel", "header"), ("channel", "payload"), ("channel", "_payload"),
+           ("channel", "_payload", "extension"), ("channel", "extension")]
+
+
+@settings(max_examples=300, deadline=None)
+@given(place=st.sampled_from(_PLACES), junk=_JSON)
+def test_malformed_parts_give_issues_never_exceptions(place: tuple[str, ...], junk: Any) -> None:
+    sub = subscription()
+    holder: Any = sub
+    for key in place[:-1]:
+        holder = holder[key]
+    holder[place[-1]] = junk
+    result = parse_subscription(sub)
+    if isinstance(result, list):
+        assert result and all(isinstance(i, Issue) and i.expression for i in result)
+    else:
+        assert isinstance(result, SubscriptionSpec)
+
+
+def test_wrongly_shaped_extension_lists_are_reported() -> None:
+    sub = subscription()
+    sub["_criteria"] = {"extension": "Flag?patient=Patient/1"}
+    sub["channel"]["extension"] = {"url": "x"}
+    assert paths(parse_subscription(sub)) == {"Subscription.criteria.extension",
+                                              "Subscription.channel.extension"}
