@@ -35,6 +35,12 @@ class Settings(BaseSettings):
     policy_profile: str | None = Field(default=None, description="policy profile, e.g. paediatric")
     scheduler: bool = Field(default=True, description="run the time-driven jobs in this process")
     recheck_seconds: float = Field(default=60.0, gt=0, description="how often time-driven flags are rechecked")
+    deliver_seconds: float = Field(default=2.0, gt=0, description="how often the outbox is drained")
+    allow_http_endpoints: bool = Field(default=False, description="accept plain-http rest-hook endpoints")
+    delivery_timeout_seconds: float = Field(default=10.0, gt=0)
+    delivery_base_seconds: float = Field(default=2.0, gt=0, description="first retry waits up to this")
+    delivery_cap_seconds: float = Field(default=300.0, gt=0, description="no retry waits longer")
+    delivery_max_attempts: int = Field(default=12, gt=0, description="then the subscription goes to error")
 
     @field_validator("lab_timezone")
     @classmethod

@@ -11,7 +11,9 @@ from datetime import datetime, timedelta
 
 from sqlmodel import Session
 
+from service.db.acks import claim_escalation, due_escalations
 from service.db.engine import Database
+from service.db.subscriptions import enqueue_events, flag_version
 from service.db.flags import (
     FlagWrite,
     open_flags,
@@ -23,6 +25,8 @@ from service.db.flags import (
 from service.db.timeline import load_timelines
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
+from service.notify.bundles import interaction_for
+from service.notify.topics import FLAG_CHANGED, FLAG_ESCALATED
 from service.policy import Policy, policy_hash
 
 __all__ = ["Evaluator"]
@@ -53,8 +57,30 @@ class Evaluator:
         subject_of = subjects(session=session, patient_keys=keys)
         written = write_changes(session=session, changes=changes, subject_of=subject_of,
                                 policy_hash=self.policy_hash, now=now)
+        # The outbox rows commit with the Flag versions they announce.
+        enqueue_events(session=session, topic=FLAG_CHANGED, now=now,
+                       flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in written])
         log.info("flags changed: %s", ", ".join(sorted({w.kind for w in written})))
         return written
+
+    def escalate(self, db: Database, now: datetime) -> int:
+        """Escalate each active, unacknowledged Flag of an escalated priority once per interval."""
+        rules = self.policy.escalation
+        interval = timedelta(minutes=rules.unacknowledged_minutes)
+        with db.session() as session:
+            due = due_escalations(session=session, priorities=[p.value for p in rules.priorities],
+                                  interval=interval, now=now)
+        sent = 0
+        for item in due:
+            with db.session(write=True) as session:
+                db.lock_patients(session, [item.patient_key])
+                if not claim_escalation(session=session, due=item, now=now):
+                    continue  # another replica took this round
+                flag = flag_version(session=session, flag_id=item.flag_id, version=item.version_id)
+                if flag is not None:
+                    sent += enqueue_events(session=session, topic=FLAG_ESCALATED, now=now,
+                                           flags=[(item.flag_id, item.version_id, "update", flag)])
+        return sent
 
     def recheck(self, db: Database, now: datetime) -> int:
         """The time-driven pass: each candidate patient in its own short unit of work, under its lock,

@@ -25,7 +25,30 @@ def recheck_flags(ctx: AppContext) -> int:
     return ctx.evaluator.recheck(ctx.db, ctx.clock.now())
 
 
-JOBS: dict[str, Callable[[AppContext], int]] = {"recheck-flags": recheck_flags}
+def deliver_outbox(ctx: AppContext) -> int:
+    """Send the queued notifications that are due (retries included), in order per subscription."""
+    return ctx.dispatcher.run_once()
+
+
+def queue_heartbeats(ctx: AppContext) -> int:
+    """Queue a heartbeat for each idle subscription whose heartbeat period has passed."""
+    from service.db.subscriptions import enqueue_heartbeats
+
+    with ctx.db.session(write=True) as session:
+        return enqueue_heartbeats(session=session, now=ctx.clock.now())
+
+
+def escalate_flags(ctx: AppContext) -> int:
+    """Announce unacknowledged high-priority Flags on the escalation topic, once per interval."""
+    return ctx.evaluator.escalate(ctx.db, ctx.clock.now())
+
+
+JOBS: dict[str, Callable[[AppContext], int]] = {
+    "recheck-flags": recheck_flags,
+    "escalate-flags": escalate_flags,
+    "queue-heartbeats": queue_heartbeats,
+    "deliver-outbox": deliver_outbox,
+}
 
 
 def run_job(ctx: AppContext, name: str) -> int:
@@ -38,7 +61,8 @@ def start_scheduler(ctx: AppContext) -> BackgroundScheduler:
     scheduler = BackgroundScheduler(timezone="UTC")
     for name in JOBS:
         # coalesce + one instance: a slow run is never stacked with the next.
-        scheduler.add_job(run_job, "interval", seconds=ctx.settings.recheck_seconds, args=(ctx, name), id=name,
+        seconds = ctx.settings.deliver_seconds if name == "deliver-outbox" else ctx.settings.recheck_seconds
+        scheduler.add_job(run_job, "interval", seconds=seconds, args=(ctx, name), id=name,
                           coalesce=True, max_instances=1)
     scheduler.start()
     return scheduler

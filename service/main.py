@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import logging
+import random
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from datetime import timedelta
 
+import httpx
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
@@ -14,11 +16,12 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
-from service.api.routes import audit, flags, ingest, meta, read
+from service.api.routes import audit, flags, ingest, meta, read, subscriptions
 from service.clock import Clock, SystemClock
 from service.config import Settings
 from service.db.engine import Database
 from service.errors import Issue, NotFound, RequestRejected
+from service.dispatch import Dispatcher
 from service.evaluation import Evaluator
 from service.ingest import Ingestor
 from service.jobs import start_scheduler
@@ -29,7 +32,8 @@ __all__ = ["build_context", "create_app"]
 log = logging.getLogger("lytestream")
 
 
-def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bool = True) -> AppContext:
+def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bool = True,
+                  http: httpx.Client | None = None) -> AppContext:
     """Everything a process needs, from its settings: the policy is validated here, at start-up."""
     policy = load_policy(settings.policy_file, profile=settings.policy_profile)
     db = Database(settings.resolved_database_url)
@@ -39,8 +43,10 @@ def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bo
     evaluator = Evaluator(policy=policy, lookback=timedelta(hours=settings.lookback_hours))
     ingestor = Ingestor(db=db, settings=settings, insulin=policy.insulin.codes_matcher(), clock=clock,
                         on_change=evaluator)
+    dispatcher = Dispatcher(db=db, settings=settings, clock=clock, client=http or httpx.Client(),
+                            rng=random.Random())
     return AppContext(settings=settings, db=db, clock=clock, ingestor=ingestor, policy=policy,
-                      evaluator=evaluator)
+                      evaluator=evaluator, dispatcher=dispatcher)
 
 
 def create_app(settings: Settings | None = None, *, context: AppContext | None = None) -> FastAPI:
@@ -60,6 +66,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app.include_router(ingest.router)
     app.include_router(flags.router)
     app.include_router(audit.router)
+    app.include_router(subscriptions.router)
     app.include_router(read.router)
 
     @app.exception_handler(RequestRejected)

@@ -10,6 +10,7 @@ from fastapi import Depends, Request
 from service.clock import Clock
 from service.config import Settings
 from service.db.engine import Database
+from service.dispatch import Dispatcher
 from service.evaluation import Evaluator
 from service.ingest import Ingestor
 from service.policy import Policy
@@ -25,6 +26,7 @@ class AppContext:
     ingestor: Ingestor
     policy: Policy
     evaluator: Evaluator
+    dispatcher: Dispatcher
 
 
 def _context(request: Request) -> AppContext:

@@ -46,7 +46,7 @@ def _fail(message: str, code: int) -> typer.Exit:
 @token_app.command("create")
 def create(
     client: Annotated[str, typer.Option(help="who will hold the token, e.g. lab-interface-engine")],
-    scope: Annotated[str, typer.Option(help='space-separated SMART system scopes, e.g. "system/Observation.cu"')],
+    scope: Annotated[str, typer.Option(help='SMART system scopes, space-separated: "system/Observation.cu"')],
     database_url: DatabaseUrl = None,
     data_dir: DataDir = None,
 ) -> None:
@@ -61,7 +61,7 @@ def create(
         raise _fail(f"token not stored ({type(exc).__name__}); is the schema up to date?", 1) from exc
     finally:
         db.dispose()
-    typer.echo(f"token created for client {client}; it is shown only now, store it in the client's secret store",
+    typer.echo(f"token created for client {client}; it is shown only now: store it in the client's secrets",
                err=True)
     typer.echo(token)
 
@@ -69,7 +69,7 @@ def create(
 @token_app.command("revoke")
 def revoke_command(
     client: Annotated[str | None, typer.Option(help="revoke every active token of this client")] = None,
-    token_id: Annotated[int | None, typer.Option("--id", help="revoke the token with this id (see `list`)")] = None,
+    token_id: Annotated[int | None, typer.Option("--id", help="revoke the token with this id")] = None,
     database_url: DatabaseUrl = None,
     data_dir: DataDir = None,
 ) -> None:
@@ -100,5 +100,5 @@ def list_command(database_url: DatabaseUrl = None, data_dir: DataDir = None) -> 
     for row in rows:
         status = "revoked" if row.revoked_at else "active"
         used = row.last_used_at.isoformat(timespec="seconds") if row.last_used_at else "-"
-        typer.echo(f"{row.id}\t{row.client}\t{status}\t{row.created_at.isoformat(timespec='seconds')}\t{used}\t"
-                   f"{row.scope}")
+        created = row.created_at.isoformat(timespec="seconds")
+        typer.echo(f"{row.id}\t{row.client}\t{status}\t{created}\t{used}\t{row.scope}")

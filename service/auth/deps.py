@@ -62,8 +62,8 @@ class Authenticator:
     what keeps a deployed service from starting without access control.
     """
 
-    def __init__(self, settings: AuthSettings, *, db: Database, clock: Clock, http: httpx.Client | None = None,
-                 monotonic: Callable[[], float] = time.monotonic) -> None:
+    def __init__(self, settings: AuthSettings, *, db: Database, clock: Clock,
+                 http: httpx.Client | None = None, monotonic: Callable[[], float] = time.monotonic) -> None:
         check_startable(settings, testing=running_under_pytest())
         self.settings = settings
         self._db = db
@@ -150,7 +150,7 @@ def _resolve(request: Request) -> Principal:
 
 
 def authenticated() -> Callable[[Request], Principal]:
-    """A dependency that only authenticates: for ``POST [base]`` Bundles, whose entries are checked one by one."""
+    """A dependency that only authenticates: for ``POST [base]`` Bundles, checked entry by entry."""
 
     def dependency(request: Request) -> Principal:
         return _resolve(request)
@@ -215,11 +215,13 @@ def _after_type(path: str, resource_type: str) -> list[str] | None:
     return None
 
 
-def entry_allowed(principal: Principal, resource_type: str, method: str, *, url: str | None = None) -> Issue | None:
+def entry_allowed(principal: Principal, resource_type: str, method: str, *,
+                  url: str | None = None) -> Issue | None:
     """None if ``principal`` may carry out this Bundle entry; else the Issue to report for it (403)."""
     needed = entry_interactions(resource_type, method, url)
     if needed is None:
-        return Issue("not-supported", f"method {method.upper()!r} is not supported in a Bundle entry", status=405)
+        return Issue("not-supported", f"method {method.upper()!r} is not supported in a Bundle entry",
+                     status=405)
     if all(principal.allows(resource_type, i) for i in needed):
         return None
     scope = needed_scope(resource_type, needed)

@@ -65,7 +65,7 @@ def forbidden(scope: str) -> AuthFailure:
 
 
 def keys_unavailable() -> AuthFailure:
-    return AuthFailure(503, "transient", "the authorisation server's signing keys cannot be fetched; try later")
+    return AuthFailure(503, "transient", "the authorisation server's signing keys are unavailable; try later")
 
 
 def _clean(text: str) -> str:

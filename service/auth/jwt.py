@@ -119,7 +119,8 @@ def _usable(item: object) -> _Key | None:
     if any(private in item for private in ("d", "p", "q")):
         return None  # a JWKS that publishes private keys is broken; do not use it
     try:
-        return _Key(kid=item.get("kid") if isinstance(item.get("kid"), str) else None, jwk=item, key=PyJWK(item))
+        kid = item.get("kid")
+        return _Key(kid=kid if isinstance(kid, str) else None, jwk=item, key=PyJWK(item))
     except (pyjwt.PyJWKError, pyjwt.InvalidKeyError, ValueError, TypeError):
         return None
 
@@ -195,7 +196,8 @@ def _key_fits(key: _Key, alg: str) -> None:
     """The header's algorithm must be one the key was made for (no cross-type or cross-curve use)."""
     declared = key.jwk.get("alg")
     kty = key.jwk.get("kty")
-    fits = (kty == "RSA" and alg[:2] in ("RS", "PS")) or (kty == "EC" and key.jwk.get("crv") == _EC_CURVES.get(alg))
+    fits = (kty == "RSA" and alg[:2] in ("RS", "PS")) or (
+        kty == "EC" and key.jwk.get("crv") == _EC_CURVES.get(alg))
     if not fits or (declared is not None and declared != alg):
         raise token_invalid("the token's algorithm does not match its signing key")
 
@@ -227,7 +229,8 @@ def _principal(claims: dict[str, Any]) -> Principal:
     else:
         raise token_invalid("the token carries no scope claim")
     sub = claims.get("sub") if isinstance(claims.get("sub"), str) else None
-    client = next((c for c in (claims.get("client_id"), claims.get("azp"), sub) if isinstance(c, str) and c), None)
+    candidates = (claims.get("client_id"), claims.get("azp"), sub)
+    client = next((c for c in candidates if isinstance(c, str) and c), None)
     if client is None:
         raise token_invalid("the token names no client (client_id or sub)")
     return Principal(client_id=client, grants=parse_scopes(scope_string).grants, kind="jwt",

@@ -86,7 +86,8 @@ def parse_scope(scope: str) -> Grant:
         raise ScopeError(scope, "not a clinical-data scope")
     level, resource_type, perm = match["level"], match["type"], match["perm"]
     if level != "system":
-        raise ScopeError(scope, f"{level}/ scopes are not honoured by a system-to-system service; use system/")
+        raise ScopeError(scope, f"{level}/ scopes are not honoured by a system-to-system service; "
+                                "use system/")
     if match["query"] is not None:
         raise ScopeError(scope, "scopes narrowed by a query suffix are not supported")
     if not _RESOURCE_TYPE.match(resource_type):

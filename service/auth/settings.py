@@ -11,7 +11,13 @@ from urllib.parse import urlsplit
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-__all__ = ["ASYMMETRIC_ALGORITHMS", "AuthConfigError", "AuthSettings", "check_startable", "running_under_pytest"]
+__all__ = [
+    "ASYMMETRIC_ALGORITHMS",
+    "AuthConfigError",
+    "AuthSettings",
+    "check_startable",
+    "running_under_pytest",
+]
 
 # Signature algorithms whose verification key is public. HS* are absent on purpose: with a JWKS the
 # "secret" would be a public key, and `none` is no signature at all.

@@ -73,7 +73,7 @@ def revoke(session: Session, *, now: datetime, client: str | None = None, token_
     if (client is None) == (token_id is None):
         raise TokenError("revoke by client or by token id, exactly one of them")
     query = select(ApiToken).where(col(ApiToken.revoked_at).is_(None))
-    query = query.where(ApiToken.client == client) if client is not None else query.where(ApiToken.id == token_id)
+    query = query.where(ApiToken.client == client if client is not None else ApiToken.id == token_id)
     rows = list(session.exec(query))
     for row in rows:
         row.revoked_at = now
@@ -98,7 +98,8 @@ def verify_minted(session: Session, *, token: str, now: datetime, touch: bool = 
     if touch:
         row.last_used_at = now
         session.add(row)
-    return Principal(client_id=row.client, grants=parse_scopes(row.scope).grants, kind="minted", token_id=row.id)
+    grants = parse_scopes(row.scope).grants
+    return Principal(client_id=row.client, grants=grants, kind="minted", token_id=row.id)
 
 
 def record_use(session: Session, *, token_id: int, now: datetime) -> None:

@@ -14,6 +14,7 @@ from sqlmodel import Field, SQLModel
 
 __all__ = [
     "AuditRecord",
+    "DeliveryAttempt",
     "Escalation",
     "FlagAck",
     "FhirVersion",
@@ -22,6 +23,8 @@ __all__ = [
     "ObservationRecord",
     "PatientAlias",
     "ReceivedRequest",
+    "SubscriptionEvent",
+    "SubscriptionRecord",
 ]
 
 
@@ -200,3 +203,59 @@ class Escalation(SQLModel, table=True):
     flag_id: str
     round: int
     escalated_at: datetime = _utc(nullable=False)
+
+
+class SubscriptionRecord(SQLModel, table=True):
+    """A subscriber's Subscription (backport on R4), its event counter and its delivery lease."""
+
+    __tablename__ = "subscription"
+    id: str = Field(primary_key=True)
+    status: str  # requested | active | error | off
+    topic: str
+    resource: bytes = Field(sa_column=Column(LargeBinary, nullable=False))  # as submitted, without id/meta
+    events_since_start: int = 0
+    error: str | None = None
+    created_at: datetime = _utc(nullable=False)
+    last_sent_at: datetime | None = _utc(nullable=True)
+    version_id: int = 1
+    last_updated: datetime = _utc(nullable=False)
+    lease_owner: str | None = None
+    lease_until: datetime | None = _utc(nullable=True)
+
+
+class SubscriptionEvent(SQLModel, table=True):
+    """The outbox: one row per notification to send, written with the change that caused it."""
+
+    __tablename__ = "subscription_event"
+    __table_args__ = (
+        UniqueConstraint("subscription_id", "number", name="uq_subscription_event_number"),
+        Index("ix_subscription_event_pending", "status", "subscription_id", "id"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    subscription_id: str
+    number: int | None = None  # event number; None for handshake and heartbeat
+    kind: str  # handshake | heartbeat | event-notification
+    focus_id: str | None = None  # Flag id
+    focus_version: int | None = None
+    interaction: str | None = None  # create | update
+    created_at: datetime = _utc(nullable=False)
+    status: str = "pending"  # pending | sent | failed
+    attempts: int = 0
+    next_attempt_at: datetime = _utc(nullable=False)
+    sent_at: datetime | None = _utc(nullable=True)
+    last_error: str | None = None
+
+
+class DeliveryAttempt(SQLModel, table=True):
+    """Every try to deliver an outbox row: the delivery log."""
+
+    __tablename__ = "delivery_attempt"
+    __table_args__ = (Index("ix_delivery_attempt_event", "event_id"),)
+    id: int | None = Field(default=None, primary_key=True)
+    event_id: int
+    subscription_id: str
+    at: datetime = _utc(nullable=False)
+    ok: bool
+    status_code: int | None = None
+    error: str | None = None
+    elapsed_ms: int = 0

@@ -57,8 +57,9 @@ def keys() -> Keys:
 def claims() -> dict[str, Any]:
     """A valid RFC 9068-style access token body for a lab feed at NOW."""
     at = int(NOW.timestamp())
-    return {"iss": ISSUER, "aud": AUDIENCE, "sub": "lab-interface-engine", "client_id": "lab-interface-engine",
-            "iat": at - 10, "nbf": at - 10, "exp": at + 300, "jti": "a1", "scope": "system/Observation.cu"}
+    return {"iss": ISSUER, "aud": AUDIENCE, "sub": "lab-interface-engine",
+            "client_id": "lab-interface-engine", "iat": at - 10, "nbf": at - 10, "exp": at + 300, "jti": "a1",
+            "scope": "system/Observation.cu"}
 
 
 MakeJwt = Callable[..., str]

@@ -6,7 +6,15 @@ from __future__ import annotations
 
 import pytest
 
-from service.auth.scopes import Grant, ScopeError, allows, needed_scope, parse_scope, parse_scopes, parse_strict
+from service.auth.scopes import (
+    Grant,
+    ScopeError,
+    allows,
+    needed_scope,
+    parse_scope,
+    parse_scopes,
+    parse_strict,
+)
 
 ALL = frozenset("cruds")
 
@@ -86,7 +94,8 @@ def test_a_grant_covers_only_its_own_type() -> None:
         "system/Observation.sr",  # out of order
         "system/Observation.",
         "system/Observation.rr",
-        "system/observation.rs",  # FHIR types are PascalCase; "patient" vs "Patient" (SMART-2 §Patient-specific)
+        # FHIR types are PascalCase (SMART-2 §Patient-specific: "patient" the level vs "Patient" the resource)
+        "system/observation.rs",
     ],
 )
 def test_undefined_or_out_of_order_permissions_grant_nothing(scope: str) -> None:
@@ -98,7 +107,8 @@ def test_undefined_or_out_of_order_permissions_grant_nothing(scope: str) -> None
 @pytest.mark.parametrize(
     "scope",
     [
-        "patient/Observation.rs",  # SMART-2 §Patient-specific scopes: "Read and search for all observations about a patient"
+        # SMART-2 §Patient-specific scopes: "Read and search for all observations about a patient"
+        "patient/Observation.rs",
         "patient/Patient.r",  # SMART-2 §Patient-specific scopes: "Read demographics about a patient"
         "patient/*.cruds",  # SMART-2 §Patient-specific scopes: "Read all available data about a patient"
         "user/Observation.rs",  # SMART-2 §User-level scopes: "Read a feed of all new lab observations"
@@ -113,7 +123,8 @@ def test_patient_and_user_scopes_grant_nothing_to_a_system_service(scope: str) -
 
 def test_a_query_suffix_makes_the_scope_grant_nothing() -> None:
     # SMART-2 §Finer-grained resource constraints: the laboratory-category example, at system level
-    scope = "system/Observation.rs?category=http://terminology.hl7.org/CodeSystem/observation-category|laboratory"
+    scope = ("system/Observation.rs"
+             "?category=http://terminology.hl7.org/CodeSystem/observation-category|laboratory")
     parsed = parse_scopes(scope)
     assert parsed.grants == ()
     assert not allows(parsed.grants, "Observation", "r")  # ignoring the suffix would have widened the grant
@@ -122,7 +133,8 @@ def test_a_query_suffix_makes_the_scope_grant_nothing() -> None:
 def test_non_clinical_scopes_are_passed_over_and_clinical_ones_kept() -> None:
     # SMART-2 §Quick Start ("openid fhirUser", "launch/patient", "offline_access") and §Extensibility
     # ("__profilePhoto.manage"), beside a clinical scope
-    parsed = parse_scopes("openid fhirUser launch/patient offline_access __profilePhoto.manage system/Flag.rs")
+    parsed = parse_scopes("openid fhirUser launch/patient offline_access __profilePhoto.manage "
+                          "system/Flag.rs")
     assert parsed.grants == (Grant("Flag", frozenset("rs")),)
     assert len(parsed.ignored) == 5
 

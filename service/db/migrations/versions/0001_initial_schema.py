@@ -31,6 +31,20 @@ def upgrade() -> None:
         batch_op.create_index('ix_audit_patient', ['patient_key', 'recorded'], unique=False)
         batch_op.create_index('ix_audit_recorded', ['recorded'], unique=False)
 
+    op.create_table('delivery_attempt',
+    sa.Column('id', sa.Integer(), nullable=False),
+    sa.Column('event_id', sa.Integer(), nullable=False),
+    sa.Column('subscription_id', sa.String(), nullable=False),
+    sa.Column('at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('ok', sa.Boolean(), nullable=False),
+    sa.Column('status_code', sa.Integer(), nullable=True),
+    sa.Column('error', sa.String(), nullable=True),
+    sa.Column('elapsed_ms', sa.Integer(), nullable=False),
+    sa.PrimaryKeyConstraint('id')
+    )
+    with op.batch_alter_table('delivery_attempt', schema=None) as batch_op:
+        batch_op.create_index('ix_delivery_attempt_event', ['event_id'], unique=False)
+
     op.create_table('fhir_version',
     sa.Column('resource_type', sa.String(), nullable=False),
     sa.Column('id', sa.String(), nullable=False),
@@ -146,11 +160,51 @@ def upgrade() -> None:
     sa.Column('body', sa.LargeBinary(), nullable=False),
     sa.PrimaryKeyConstraint('id')
     )
+    op.create_table('subscription',
+    sa.Column('id', sa.String(), nullable=False),
+    sa.Column('status', sa.String(), nullable=False),
+    sa.Column('topic', sa.String(), nullable=False),
+    sa.Column('resource', sa.LargeBinary(), nullable=False),
+    sa.Column('events_since_start', sa.Integer(), nullable=False),
+    sa.Column('error', sa.String(), nullable=True),
+    sa.Column('created_at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('last_sent_at', sa.DateTime(timezone=True), nullable=True),
+    sa.Column('version_id', sa.Integer(), nullable=False),
+    sa.Column('last_updated', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('lease_owner', sa.String(), nullable=True),
+    sa.Column('lease_until', sa.DateTime(timezone=True), nullable=True),
+    sa.PrimaryKeyConstraint('id')
+    )
+    op.create_table('subscription_event',
+    sa.Column('id', sa.Integer(), nullable=False),
+    sa.Column('subscription_id', sa.String(), nullable=False),
+    sa.Column('number', sa.Integer(), nullable=True),
+    sa.Column('kind', sa.String(), nullable=False),
+    sa.Column('focus_id', sa.String(), nullable=True),
+    sa.Column('focus_version', sa.Integer(), nullable=True),
+    sa.Column('interaction', sa.String(), nullable=True),
+    sa.Column('created_at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('status', sa.String(), nullable=False),
+    sa.Column('attempts', sa.Integer(), nullable=False),
+    sa.Column('next_attempt_at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('sent_at', sa.DateTime(timezone=True), nullable=True),
+    sa.Column('last_error', sa.String(), nullable=True),
+    sa.PrimaryKeyConstraint('id'),
+    sa.UniqueConstraint('subscription_id', 'number', name='uq_subscription_event_number')
+    )
+    with op.batch_alter_table('subscription_event', schema=None) as batch_op:
+        batch_op.create_index('ix_subscription_event_pending', ['status', 'subscription_id', 'id'], unique=False)
+
     
 
 
 def downgrade() -> None:
     
+    with op.batch_alter_table('subscription_event', schema=None) as batch_op:
+        batch_op.drop_index('ix_subscription_event_pending')
+
+    op.drop_table('subscription_event')
+    op.drop_table('subscription')
     op.drop_table('received_request')
     with op.batch_alter_table('patient_alias', schema=None) as batch_op:
         batch_op.drop_index(batch_op.f('ix_patient_alias_patient_key'))
@@ -176,6 +230,10 @@ def downgrade() -> None:
 
     op.drop_table('flag')
     op.drop_table('fhir_version')
+    with op.batch_alter_table('delivery_attempt', schema=None) as batch_op:
+        batch_op.drop_index('ix_delivery_attempt_event')
+
+    op.drop_table('delivery_attempt')
     with op.batch_alter_table('audit_event', schema=None) as batch_op:
         batch_op.drop_index('ix_audit_recorded')
         batch_op.drop_index('ix_audit_patient')

@@ -1,0 +1,172 @@
+"""Subscriptions (R5 Backport on R4): create, read, search, update, delete, $status and $events."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import orjson
+from fastapi import APIRouter, Request
+from fastapi.concurrency import run_in_threadpool
+from fastapi.responses import Response
+from sqlalchemy import select, update
+from sqlmodel import Session
+
+from service.api.context import AppContext, ContextDep
+from service.api.fhir_io import fhir_response, read_json
+from service.api.requester import RequesterDep
+from service.db.audit import record_audit
+from service.db.subscriptions import (
+    create_subscription,
+    events_between,
+    flag_version,
+    queue_handshake,
+    served_subscription,
+)
+from service.db.tables import SubscriptionEvent, SubscriptionRecord
+from service.dispatch import subscription_state
+from service.errors import Issue, NotFound, RequestRejected
+from service.fhir.audit_render import AuditFacts, Requester
+from service.fhir.render import searchset
+from service.notify.bundles import NotificationEvent, events_response, status_response
+from service.notify.topics import CONTENT_CODES, SubscriptionSpec, parse_subscription
+
+router = APIRouter()
+_S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
+_E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
+
+
+def _spec(ctx: AppContext, body: Any) -> SubscriptionSpec:
+    if not isinstance(body, dict) or body.get("resourceType") != "Subscription":
+        raise RequestRejected([Issue("invalid", "this endpoint takes a Subscription", ("Subscription",))])
+    parsed = parse_subscription(body, allow_http=ctx.settings.allow_http_endpoints)
+    if isinstance(parsed, list):
+        raise RequestRejected([Issue(i.code, i.message, i.expression, i.severity, 422 if i.status == 400 else i.status)
+                               for i in parsed])
+    return parsed
+
+
+def _audit(ctx: AppContext, session: Session, who: Requester, subtype: str, sid: str, version: int) -> None:
+    facts = AuditFacts(subtype=subtype, recorded=ctx.clock.now(), requester=who,
+                       what=[f"Subscription/{sid}/_history/{version}"])
+    record_audit(session=session, events=[(facts, None)], base_url=ctx.settings.base_url)
+
+
+def _row(session: Session, sid: str) -> Any:
+    row = session.execute(select(_S).where(_S.c.id == sid)).first()
+    if row is None:
+        raise NotFound(f"Subscription/{sid} is not held here")
+    return row
+
+
+@router.post("/fhir/Subscription")
+async def create(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    body, _ = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
+    spec = _spec(ctx, body)
+
+    def run() -> dict[str, Any]:
+        with ctx.db.session(write=True) as session:
+            row = create_subscription(session=session, resource=body, spec=spec, now=ctx.clock.now())
+            _audit(ctx, session, who, "create", row.id, row.version_id)
+            return served_subscription(row)
+
+    served = await run_in_threadpool(run)
+    return fhir_response(served, 201, {"Location": f"{ctx.settings.base_url}/Subscription/{served['id']}"
+                                                   f"/_history/{served['meta']['versionId']}"})
+
+
+@router.get("/fhir/Subscription")
+def search(ctx: ContextDep) -> Response:
+    with ctx.db.session() as session:
+        rows = session.execute(select(_S).order_by(_S.c.created_at, _S.c.id)).all()
+    return fhir_response(searchset([served_subscription(r) for r in rows], base=ctx.settings.base_url,
+                                   self_url=f"{ctx.settings.base_url}/Subscription", next_url=None,
+                                   total=len(rows), now=ctx.clock.now()))
+
+
+@router.get("/fhir/Subscription/{sid}")
+def read(sid: str, ctx: ContextDep) -> Response:
+    with ctx.db.session() as session:
+        return fhir_response(served_subscription(_row(session, sid)))
+
+
+@router.put("/fhir/Subscription/{sid}")
+async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
+    """Update; a client sets status ``requested`` (or ``active``) to re-activate after an error."""
+    body, _ = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
+    if isinstance(body, dict) and body.get("id") not in (None, sid):
+        raise RequestRejected([Issue("value", "the body's id must be the id in the URL", ("Subscription.id",))])
+    spec = _spec(ctx, body)
+
+    def run() -> dict[str, Any]:
+        now = ctx.clock.now()
+        with ctx.db.session(write=True) as session:
+            row = _row(session, sid)
+            wanted = body.get("status")
+            status = row.status
+            if wanted == "off":
+                status = "off"
+            elif wanted in ("requested", "active") and row.status in ("error", "off", "requested"):
+                status = "requested"
+                queue_handshake(session=session, subscription_id=sid, now=now)
+                # A client re-activating resumes delivery of what queued up meanwhile.
+                session.execute(update(_E).where(_E.c.subscription_id == sid, _E.c.status == "failed")
+                                .values(status="pending", attempts=0, next_attempt_at=now))
+            stored = {k: v for k, v in body.items() if k not in ("id", "meta", "status", "error")}
+            session.execute(update(_S).where(_S.c.id == sid).values(
+                resource=orjson.dumps(stored), topic=spec.topic, status=status,
+                error=None if status == "requested" else row.error, version_id=row.version_id + 1,
+                last_updated=now))
+            _audit(ctx, session, who, "update", sid, row.version_id + 1)
+            return served_subscription(_row(session, sid))
+
+    return fhir_response(await run_in_threadpool(run))
+
+
+@router.delete("/fhir/Subscription/{sid}")
+def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
+    """Stops it (status ``off``); its events stay for the audit trail."""
+    now = ctx.clock.now()
+    with ctx.db.session(write=True) as session:
+        row = _row(session, sid)
+        session.execute(update(_S).where(_S.c.id == sid).values(status="off", version_id=row.version_id + 1,
+                                                                last_updated=now))
+        _audit(ctx, session, who, "delete", sid, row.version_id + 1)
+    return fhir_response(None, 204)
+
+
+@router.get("/fhir/Subscription/{sid}/$status")
+def status(sid: str, ctx: ContextDep) -> Response:
+    with ctx.db.session() as session:
+        state = subscription_state(_row(session, sid), ctx.settings.base_url)
+    return fhir_response(status_response([state], now=ctx.clock.now()))
+
+
+@router.get("/fhir/Subscription/{sid}/$events")
+def events(sid: str, request: Request, ctx: ContextDep) -> Response:
+    """Events by number, for a subscriber that saw a gap: eventsSinceNumber, eventsUntilNumber, content."""
+    params = request.query_params
+    since, until = _number(params.get("eventsSinceNumber")), _number(params.get("eventsUntilNumber"))
+    content = params.get("content")
+    if content is not None and content not in CONTENT_CODES:
+        raise RequestRejected([Issue("value", f"content must be one of {', '.join(CONTENT_CODES)}")])
+    with ctx.db.session() as session:
+        row = _row(session, sid)
+        state = subscription_state(row, ctx.settings.base_url)
+        shown = content or state.content
+        out = []
+        for e in events_between(session=session, subscription_id=sid, since=since, until=until)[:1000]:
+            resource = flag_version(session=session, flag_id=e.focus_id, version=e.focus_version) \
+                if shown == "full-resource" else None
+            out.append(NotificationEvent(number=e.number, timestamp=e.created_at, focus=f"Flag/{e.focus_id}",
+                                         interaction=e.interaction or "update", version_id=str(e.focus_version),
+                                         last_updated=e.created_at, resource=resource))
+    return fhir_response(events_response(state, out, now=ctx.clock.now(), content=content))
+
+
+def _number(value: str | None) -> int | None:
+    if value is None:
+        return None
+    if not value.isdigit():
+        raise RequestRejected([Issue("value", f"event numbers are whole numbers, not {value!r}")])
+    return int(value)
+

@@ -1,0 +1,174 @@
+"""Subscriptions and their outbox. Keyword-only, session first, never commits.
+
+Event numbers are taken from the subscription row inside the transaction that writes the Flag
+change, so numbers have no gaps and follow commit order per subscription. Delivery claims a
+subscription with a lease (a conditional UPDATE … RETURNING, portable to SQLite and PostgreSQL):
+one replica at a time sends a subscription's rows, in number order.
+"""
+
+from __future__ import annotations
+
+import uuid
+from collections.abc import Iterable, Sequence
+from datetime import datetime, timedelta
+from typing import Any
+
+import orjson
+from sqlalchemy import and_, case, insert, or_, select, update
+from sqlmodel import Session
+
+from service.db.tables import DeliveryAttempt, FhirVersion, SubscriptionEvent, SubscriptionRecord
+from service.notify.topics import SubscriptionSpec, matches, parse_subscription
+
+__all__ = [
+    "claim_subscriptions",
+    "create_subscription",
+    "enqueue_events",
+    "enqueue_heartbeats",
+    "load_spec",
+    "pending_events",
+    "release",
+    "served_subscription",
+]
+
+_S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
+_E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
+_A = DeliveryAttempt.__table__  # type: ignore[attr-defined]
+_V = FhirVersion.__table__  # type: ignore[attr-defined]
+# Still counting while in error (the IG: keep incrementing eventsSinceSubscriptionStart).
+_COUNTING = ("requested", "active", "error")
+
+
+def load_spec(row: Any) -> SubscriptionSpec:
+    spec = parse_subscription(orjson.loads(row.resource), allow_http=True)
+    assert isinstance(spec, SubscriptionSpec), "a stored subscription was accepted once"
+    return spec
+
+
+def served_subscription(row: Any) -> dict[str, Any]:
+    """The Subscription as we serve it: what was submitted, with our id, meta, status and error."""
+    from service.fhir.render import fhir_instant
+
+    body = orjson.loads(row.resource)
+    body["id"] = row.id
+    body["meta"] = {"versionId": str(row.version_id), "lastUpdated": fhir_instant(row.last_updated)}
+    body["status"] = row.status
+    if row.error:
+        body["error"] = row.error
+    else:
+        body.pop("error", None)
+    return body
+
+
+def create_subscription(*, session: Session, resource: dict[str, Any], spec: SubscriptionSpec,
+                        now: datetime) -> Any:
+    """Store a new subscription as ``requested`` and queue its handshake."""
+    sid = str(uuid.uuid4())
+    body = {k: v for k, v in resource.items() if k not in ("id", "meta", "status", "error")}
+    session.execute(insert(_S).values(id=sid, status="requested", topic=spec.topic, resource=orjson.dumps(body),
+                                      created_at=now, version_id=1, last_updated=now, events_since_start=0))
+    queue_handshake(session=session, subscription_id=sid, now=now)
+    return session.execute(select(_S).where(_S.c.id == sid)).one()
+
+
+def queue_handshake(*, session: Session, subscription_id: str, now: datetime) -> None:
+    session.execute(insert(_E).values(subscription_id=subscription_id, kind="handshake", created_at=now,
+                                      next_attempt_at=now))
+
+
+def enqueue_events(*, session: Session, topic: str, flags: Iterable[tuple[str, int, str, dict[str, Any]]],
+                   now: datetime) -> int:
+    """One numbered event per (subscription on ``topic``, matching flag version).
+
+    ``flags`` holds (flag id, version, interaction, Flag JSON). Returns the rows written.
+    """
+    subs = session.execute(select(_S).where(_S.c.topic == topic, _S.c.status.in_(_COUNTING))
+                           .order_by(_S.c.id).with_for_update()).all()
+    if not subs:
+        return 0
+    written = 0
+    items = list(flags)
+    for sub in subs:
+        spec = load_spec(sub)
+        hits = [f for f in items if matches(spec, f[3])]
+        if not hits:
+            continue
+        first = sub.events_since_start + 1
+        rows = [{"subscription_id": sub.id, "number": first + i, "kind": "event-notification", "focus_id": fid,
+                 "focus_version": vid, "interaction": interaction, "created_at": now, "next_attempt_at": now}
+                for i, (fid, vid, interaction, _) in enumerate(hits)]
+        session.execute(insert(_E), rows)
+        session.execute(update(_S).where(_S.c.id == sub.id).values(events_since_start=first + len(hits) - 1))
+        written += len(rows)
+    return written
+
+
+def enqueue_heartbeats(*, session: Session, now: datetime) -> int:
+    """A heartbeat for each active subscription idle for its heartbeat period, with nothing queued."""
+    queued = 0
+    pending = {sid for (sid,) in session.execute(select(_E.c.subscription_id).where(_E.c.status == "pending"))}
+    for sub in session.execute(select(_S).where(_S.c.status == "active")).all():
+        period = load_spec(sub).heartbeat_period_s
+        if not period or sub.id in pending:
+            continue
+        last = sub.last_sent_at or sub.created_at
+        if now - last >= timedelta(seconds=period):
+            session.execute(insert(_E).values(subscription_id=sub.id, kind="heartbeat", created_at=now,
+                                              next_attempt_at=now))
+            queued += 1
+    return queued
+
+
+def claim_subscriptions(*, session: Session, owner: str, now: datetime, lease: timedelta) -> list[str]:
+    """Lease the subscriptions that have a due row and no live lease; returns their ids."""
+    due = select(_E.c.subscription_id).where(_E.c.status == "pending", _E.c.next_attempt_at <= now)
+    result = session.execute(
+        update(_S)
+        .where(_S.c.id.in_(due), _S.c.status.in_(("requested", "active")),
+               or_(_S.c.lease_until.is_(None), _S.c.lease_until < now))
+        .values(lease_owner=owner, lease_until=now + lease)
+        .returning(_S.c.id)
+    )
+    return sorted(r[0] for r in result)
+
+
+def release(*, session: Session, subscription_id: str, owner: str) -> None:
+    session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == owner)
+                    .values(lease_owner=None, lease_until=None))
+
+
+def pending_events(*, session: Session, subscription_id: str, limit: int = 100) -> Sequence[Any]:
+    """The subscription's unsent rows in order (handshake first, then by number)."""
+    # A handshake goes first even when older events wait (a client re-activating after an error).
+    handshake_first = case((_E.c.kind == "handshake", 0), else_=1)
+    return session.execute(select(_E).where(_E.c.subscription_id == subscription_id, _E.c.status == "pending")
+                           .order_by(handshake_first, _E.c.id).limit(limit)).all()
+
+
+def record_attempt(*, session: Session, event: Any, ok: bool, status_code: int | None, error: str | None,
+                   elapsed_ms: int, now: datetime, next_at: datetime | None, give_up: bool) -> None:
+    session.execute(insert(_A).values(event_id=event.id, subscription_id=event.subscription_id, at=now, ok=ok,
+                                      status_code=status_code, error=error, elapsed_ms=elapsed_ms))
+    values: dict[str, Any] = {"attempts": event.attempts + 1, "last_error": error}
+    if ok:
+        values |= {"status": "sent", "sent_at": now}
+    elif give_up:
+        values |= {"status": "failed"}
+    elif next_at is not None:
+        values |= {"next_attempt_at": next_at}
+    session.execute(update(_E).where(_E.c.id == event.id).values(**values))
+
+
+def events_between(*, session: Session, subscription_id: str, since: int | None, until: int | None) -> Sequence[Any]:
+    conds = [_E.c.subscription_id == subscription_id, _E.c.number.is_not(None)]
+    if since is not None:
+        conds.append(_E.c.number >= since)
+    if until is not None:
+        conds.append(_E.c.number <= until)
+    return session.execute(select(_E).where(and_(*conds)).order_by(_E.c.number)).all()
+
+
+def flag_version(*, session: Session, flag_id: str, version: int) -> dict[str, Any] | None:
+    row = session.execute(select(_V.c.resource).where(_V.c.resource_type == "Flag", _V.c.id == flag_id,
+                                                      _V.c.version_id == version)).first()
+    return orjson.loads(row[0]) if row else None
