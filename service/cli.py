@@ -8,6 +8,7 @@ from typing import Annotated, Any
 import typer
 from rich.console import Console
 
+from service.auth.cli import token_app
 from service.config import Settings
 
 app = typer.Typer(help="lytestream: FHIR lab results in, safety Flags out. Decision support only.",
@@ -16,6 +17,7 @@ db_app = typer.Typer(help="Database schema.", no_args_is_help=True)
 app.add_typer(db_app, name="db")
 policy_app = typer.Typer(help="Site policy (thresholds).", no_args_is_help=True)
 app.add_typer(policy_app, name="policy")
+app.add_typer(token_app, name="token")
 console = Console(stderr=True)
 
 DatabaseUrl = Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]

@@ -9,13 +9,15 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from pydantic import Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from service.auth.settings import AuthSettings
+
 __all__ = ["Settings", "get_settings"]
 
 
 class Settings(BaseSettings):
     """Deployment settings, from ``LYTESTREAM_*`` environment variables or CLI options."""
 
-    model_config = SettingsConfigDict(env_prefix="LYTESTREAM_", extra="forbid")
+    model_config = SettingsConfigDict(env_prefix="LYTESTREAM_", extra="forbid", env_nested_delimiter="__")
 
     data_dir: Path = Field(default=Path("./lytestream-data"), description="where the SQLite file lives")
     database_url: str | None = Field(
@@ -34,6 +36,7 @@ class Settings(BaseSettings):
     policy_file: Path | None = Field(default=None, description="site policy TOML; default: built-in")
     policy_profile: str | None = Field(default=None, description="policy profile, e.g. paediatric")
     scheduler: bool = Field(default=True, description="run the time-driven jobs in this process")
+    auth: AuthSettings = Field(default_factory=AuthSettings, description="bearer tokens: minted, JWT or both")
     recheck_seconds: float = Field(default=60.0, gt=0, description="how often time-driven flags are rechecked")
     deliver_seconds: float = Field(default=2.0, gt=0, description="how often the outbox is drained")
     allow_http_endpoints: bool = Field(default=False, description="accept plain-http rest-hook endpoints")

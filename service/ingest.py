@@ -59,6 +59,7 @@ class EntryRequest:
     url: str | None = None
     if_none_exist: str | None = None
     full_url: str | None = None
+    refused: Issue | None = None  # the caller's scopes do not cover this entry
 
 
 @dataclass
@@ -207,6 +208,8 @@ class Ingestor:
         return identities, full_urls
 
     def _prepare(self, e: EntryRequest, identities: BundleIdentities, full_urls: set[str]) -> _Prepared:
+        if e.refused is not None:
+            raise Invalid([e.refused])
         resource = e.resource
         if not isinstance(resource, dict):
             raise Invalid([Issue("structure", "a resource (JSON object) is required", (e.root,))])

@@ -16,6 +16,7 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
+from service.auth.deps import Authenticator, install_auth
 from service.api.routes import audit, flags, ingest, meta, read, subscriptions
 from service.clock import Clock, SystemClock
 from service.config import Settings
@@ -59,9 +60,12 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
         finally:
             if scheduler is not None:
                 scheduler.shutdown(wait=True)
+            authenticator.close()
 
     app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs", redoc_url=None, lifespan=lifespan)
     app.state.ctx = ctx
+    authenticator = Authenticator(ctx.settings.auth, db=ctx.db, clock=ctx.clock)
+    install_auth(app, authenticator)
     app.include_router(meta.router)
     app.include_router(ingest.router)
     app.include_router(flags.router)

@@ -14,6 +14,7 @@ from sqlalchemy import create_engine, text
 
 from service.clock import FixedClock
 from service.config import Settings
+from service.auth.tokens import mint
 from service.main import build_context, create_app
 
 POSTGRES_URL = os.environ.get(
@@ -78,7 +79,17 @@ def context(settings: Settings, clock: FixedClock):  # type: ignore[no-untyped-d
     ctx.db.dispose()
 
 
+FULL_SCOPE = "system/*.cruds"
+
+
+def authorised_client(ctx, scope: str = FULL_SCOPE, client: str = "test-suite") -> TestClient:  # type: ignore[no-untyped-def]
+    """A TestClient that sends a bearer token minted for ``scope``: every API test goes through auth."""
+    with ctx.db.session(write=True) as session:
+        token = mint(session, client=client, scope=scope, now=ctx.clock.now())
+    return TestClient(create_app(context=ctx), headers={"Authorization": f"Bearer {token}"})
+
+
 @pytest.fixture
 def client(context) -> Iterator[TestClient]:  # type: ignore[no-untyped-def]
-    with TestClient(create_app(context=context)) as c:
+    with authorised_client(context) as c:
         yield c

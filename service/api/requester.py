@@ -7,6 +7,7 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 
+from service.auth.deps import CallerDep
 from service.fhir.audit_render import Requester
 
 __all__ = ["RequesterDep", "request_id"]
@@ -24,11 +25,11 @@ def request_id(request: Request) -> str:
     return rid
 
 
-def _requester(request: Request) -> Requester:
-    principal = getattr(request.state, "principal", None)
-    client = getattr(principal, "client_id", None) or ANONYMOUS
+def _requester(request: Request, principal: CallerDep) -> Requester:
+    """The authenticated caller (every route that names a requester is authenticated through it)."""
+    client = principal.client_id or ANONYMOUS
     address = request.client.host if request.client else None
-    return Requester(client=client, address=address, request_id=request_id(request))
+    return Requester(client=client, address=address, request_id=request_id(request), principal=principal)
 
 
 RequesterDep = Annotated[Requester, Depends(_requester)]

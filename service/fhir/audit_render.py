@@ -36,6 +36,7 @@ class Requester:
     client: str
     address: str | None
     request_id: str
+    principal: Any = None  # the authenticated caller (service.auth.principal.Principal), for scope checks
 
 
 @dataclass(frozen=True, slots=True)

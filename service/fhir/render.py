@@ -23,7 +23,8 @@ FHIR_JSON = "application/fhir+json"
 CAUTION = (
     "Decision support only: thresholds are site policy; defer to local protocols and licensed clinicians."
 )
-_REASONS = {200: "OK", 201: "Created", 400: "Bad Request", 404: "Not Found", 409: "Conflict",
+_REASONS = {200: "OK", 201: "Created", 400: "Bad Request", 401: "Unauthorized", 403: "Forbidden",
+            404: "Not Found", 405: "Method Not Allowed", 409: "Conflict",
             412: "Precondition Failed", 413: "Payload Too Large", 415: "Unsupported Media Type",
             422: "Unprocessable Entity", 500: "Internal Server Error"}
 

@@ -28,7 +28,7 @@ def test_acknowledge_returns_who_and_when(client: TestClient, clock: FixedClock)
     r = ack(client, raise_flag(client))
     assert r.status_code == 200
     params = {p["name"]: p for p in r.json()["parameter"]}
-    assert params["by"]["valueString"] == "anonymous"
+    assert params["by"]["valueString"] == "test-suite"  # the client the token was minted for
     assert params["acknowledged"]["valueDateTime"] == clock.now().isoformat().replace("+00:00", "Z")
 
 

@@ -10,7 +10,8 @@ from fastapi.testclient import TestClient
 
 from service.clock import FixedClock
 from service.config import Settings
-from service.main import build_context, create_app
+from service.main import build_context
+from tests.conftest import authorised_client
 from tests.factories import HEADERS, bundle, dumps, observation
 
 
@@ -99,9 +100,9 @@ def test_bundle_over_the_entry_limit_is_413(context, client: TestClient) -> None
 
 
 def test_body_over_the_byte_limit_is_413(tmp_path: Path, clock: FixedClock) -> None:
-    settings = Settings(data_dir=tmp_path, max_body_bytes=2000)
+    settings = Settings(data_dir=tmp_path, max_body_bytes=2000, scheduler=False)
     ctx = build_context(settings, clock=clock)
-    with TestClient(create_app(context=ctx)) as small:
+    with authorised_client(ctx) as small:
         status, body = send(small, bundle("batch", *[observation(f"R{i}") for i in range(20)]))
     ctx.db.dispose()
     assert status == 413
@@ -157,8 +158,8 @@ def test_unknown_route_answers_with_an_operation_outcome(client: TestClient) -> 
 
 @pytest.fixture
 def zoned(tmp_path: Path, clock: FixedClock) -> Iterator[TestClient]:
-    ctx = build_context(Settings(data_dir=tmp_path, lab_timezone="Europe/Berlin"), clock=clock)
-    with TestClient(create_app(context=ctx)) as c:
+    ctx = build_context(Settings(data_dir=tmp_path, lab_timezone="Europe/Berlin", scheduler=False), clock=clock)
+    with authorised_client(ctx) as c:
         yield c
     ctx.db.dispose()
 

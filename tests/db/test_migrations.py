@@ -6,6 +6,7 @@ from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
 from sqlmodel import SQLModel
 
+import service.auth.tables  # noqa: F401
 import service.db.tables  # noqa: F401
 from service.db.engine import Database
 

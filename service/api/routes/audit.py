@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
+from service.auth.deps import require
 from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
 from service.db.audit import AuditQuery, search_audit
 from service.db.reads import patient_key_for
@@ -18,7 +19,7 @@ router = APIRouter()
 _PARAMS = {"date", "agent", "patient", "patient:identifier", "subtype", "_count", "_offset"}
 
 
-@router.get("/fhir/AuditEvent")
+@router.get("/fhir/AuditEvent", dependencies=[Depends(require("AuditEvent", "s"))])
 async def search(request: Request, ctx: ContextDep) -> Response:
     params = request.query_params
     check_params(params, _PARAMS)

@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import orjson
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.api.requester import RequesterDep
+from service.auth.deps import require
 from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
 from service.db.acks import acknowledge
 from service.db.audit import record_audit
@@ -29,7 +30,7 @@ _PRIORITY_CODES = {"PH": "high", "PM": "medium", "PL": "low"}
 INCLUDE_EVIDENCE = "Flag:detail"  # our name for "the result versions each Flag rests on"
 
 
-@router.get("/fhir/Flag")
+@router.get("/fhir/Flag", dependencies=[Depends(require("Flag", "s"))])
 async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     params = request.query_params
     check_params(params, _PARAMS)
@@ -89,7 +90,7 @@ def audit_flag_access(ctx: ContextDep, who: Requester, rows: list[bytes], *, sub
         record_audit(session=session, events=events, base_url=ctx.settings.base_url)
 
 
-@router.post("/fhir/Flag/{flag_id}/$acknowledge")
+@router.post("/fhir/Flag/{flag_id}/$acknowledge", dependencies=[Depends(require("Flag", "u"))])
 async def acknowledge_flag(flag_id: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     """Record that the team has seen this Flag (stops its escalation). Body: optional Parameters with a
     ``note`` (valueString)."""

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
+from service.auth.deps import CallerDep, entry_allowed, require
 from service.api.requester import RequesterDep
 from service.api.fhir_io import fhir_response, prefer_return, read_json
 from service.db.reads import read_version
@@ -22,10 +23,15 @@ _BUNDLE_TYPES = ("transaction", "batch")
 
 
 @router.post("/fhir")
-async def post_bundle(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    """A transaction (all or nothing) or batch (entry by entry) Bundle."""
+async def post_bundle(request: Request, ctx: ContextDep, who: RequesterDep, caller: CallerDep) -> Response:
+    """A transaction (all or nothing) or batch (entry by entry) Bundle; scopes are checked per entry."""
     body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     entries, kind = _bundle_entries(body, ctx.settings.max_bundle_entries)
+    for e in entries:
+        rtype = e.resource.get("resourceType") if isinstance(e.resource, dict) else None
+        issue = entry_allowed(caller, str(rtype or (e.url or "").split("?")[0].split("/")[0]), e.method, url=e.url)
+        if issue is not None:
+            e.refused = issue.at(e.root.removesuffix(".resource"))
     ingest = ctx.ingestor.transaction if kind == "transaction" else ctx.ingestor.batch
     results = await run_in_threadpool(ingest, entries, raw=raw, requester=who)
     want = prefer_return(request, "minimal")
@@ -110,21 +116,23 @@ def _single_response(request: Request, result: EntryResult, base_url: str) -> Re
     return fhir_response(result.body, result.status, headers)
 
 
-@router.post("/fhir/Observation")
+@router.post("/fhir/Observation", dependencies=[Depends(require("Observation", "c"))])
 async def create_observation(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     return await _write(request, ctx, who, "Observation", "POST")
 
 
-@router.put("/fhir/Observation")
+@router.put("/fhir/Observation", dependencies=[Depends(require("Observation", "cu"))])
 async def update_observation(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     return await _write(request, ctx, who, "Observation", "PUT")
 
 
-@router.post("/fhir/MedicationAdministration")
+@router.post("/fhir/MedicationAdministration",
+             dependencies=[Depends(require("MedicationAdministration", "c"))])
 async def create_administration(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     return await _write(request, ctx, who, "MedicationAdministration", "POST")
 
 
-@router.put("/fhir/MedicationAdministration")
+@router.put("/fhir/MedicationAdministration",
+            dependencies=[Depends(require("MedicationAdministration", "cu"))])
 async def update_administration(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     return await _write(request, ctx, who, "MedicationAdministration", "PUT")

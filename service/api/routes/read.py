@@ -3,13 +3,16 @@
 from __future__ import annotations
 
 import orjson
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.api.requester import RequesterDep
+from service.auth.deps import require
+from service.auth.failures import forbidden
+from service.auth.scopes import needed_scope
 from service.api.routes.flags import audit_flag_access
 from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
 from service.errors import Issue, NotFound, RequestRejected
@@ -38,6 +41,7 @@ def vread(rtype: str, rid: str, vid: str, ctx: ContextDep, who: RequesterDep) ->
 
 def _vread(rtype: str, rid: str, vid: int | None, ctx: ContextDep, who: Requester) -> Response:
     _readable(rtype)
+    _allowed(rtype, "r", ctx, who)
     with ctx.db.session() as session:
         body = read_version(session=session, resource_type=rtype, rid=rid, version=vid)
     if body is None:
@@ -51,6 +55,7 @@ def _vread(rtype: str, rid: str, vid: int | None, ctx: ContextDep, who: Requeste
 @router.get("/fhir/{rtype}/{rid}/_history")
 def instance_history(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     _readable(rtype)
+    _allowed(rtype, "r", ctx, who)
     with ctx.db.session() as session:
         versions = history(session=session, resource_type=rtype, rid=rid)
     if not versions:
@@ -71,7 +76,7 @@ def instance_history(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -
     return fhir_response({"resourceType": "Bundle", "type": "history", "total": len(entries), "entry": entries})
 
 
-@router.get("/fhir/Observation")
+@router.get("/fhir/Observation", dependencies=[Depends(require("Observation", "s"))])
 async def search(request: Request, ctx: ContextDep) -> Response:
     params = request.query_params
     check_params(params, _OBS_PARAMS)
@@ -95,6 +100,13 @@ async def search(request: Request, ctx: ContextDep) -> Response:
     rows, total = await run_in_threadpool(run)
     return fhir_response(page_bundle(rtype="Observation", params=params, page=page, rows=rows, total=total,
                                      settings=ctx.settings, now=ctx.clock.now()))
+
+
+def _allowed(rtype: str, interaction: str, ctx: ContextDep, who: Requester) -> None:
+    """Scope check for the generic read routes, whose resource type is a path parameter."""
+    principal = who.principal
+    if principal is not None and not principal.allows(rtype, interaction):
+        raise forbidden(needed_scope(rtype, frozenset(interaction)))
 
 
 def _readable(rtype: str) -> None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import orjson
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 from sqlalchemy import select, update
@@ -14,6 +14,7 @@ from sqlmodel import Session
 from service.api.context import AppContext, ContextDep
 from service.api.fhir_io import fhir_response, read_json
 from service.api.requester import RequesterDep
+from service.auth.deps import require
 from service.db.audit import record_audit
 from service.db.subscriptions import (
     create_subscription,
@@ -58,7 +59,7 @@ def _row(session: Session, sid: str) -> Any:
     return row
 
 
-@router.post("/fhir/Subscription")
+@router.post("/fhir/Subscription", dependencies=[Depends(require("Subscription", "c"))])
 async def create(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     body, _ = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     spec = _spec(ctx, body)
@@ -74,7 +75,7 @@ async def create(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
                                                    f"/_history/{served['meta']['versionId']}"})
 
 
-@router.get("/fhir/Subscription")
+@router.get("/fhir/Subscription", dependencies=[Depends(require("Subscription", "s"))])
 def search(ctx: ContextDep) -> Response:
     with ctx.db.session() as session:
         rows = session.execute(select(_S).order_by(_S.c.created_at, _S.c.id)).all()
@@ -83,13 +84,13 @@ def search(ctx: ContextDep) -> Response:
                                    total=len(rows), now=ctx.clock.now()))
 
 
-@router.get("/fhir/Subscription/{sid}")
+@router.get("/fhir/Subscription/{sid}", dependencies=[Depends(require("Subscription", "r"))])
 def read(sid: str, ctx: ContextDep) -> Response:
     with ctx.db.session() as session:
         return fhir_response(served_subscription(_row(session, sid)))
 
 
-@router.put("/fhir/Subscription/{sid}")
+@router.put("/fhir/Subscription/{sid}", dependencies=[Depends(require("Subscription", "u"))])
 async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     """Update; a client sets status ``requested`` (or ``active``) to re-activate after an error."""
     body, _ = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
@@ -122,7 +123,7 @@ async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep
     return fhir_response(await run_in_threadpool(run))
 
 
-@router.delete("/fhir/Subscription/{sid}")
+@router.delete("/fhir/Subscription/{sid}", dependencies=[Depends(require("Subscription", "d"))])
 def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     """Stops it (status ``off``); its events stay for the audit trail."""
     now = ctx.clock.now()
@@ -134,14 +135,14 @@ def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     return fhir_response(None, 204)
 
 
-@router.get("/fhir/Subscription/{sid}/$status")
+@router.get("/fhir/Subscription/{sid}/$status", dependencies=[Depends(require("Subscription", "r"))])
 def status(sid: str, ctx: ContextDep) -> Response:
     with ctx.db.session() as session:
         state = subscription_state(_row(session, sid), ctx.settings.base_url)
     return fhir_response(status_response([state], now=ctx.clock.now()))
 
 
-@router.get("/fhir/Subscription/{sid}/$events")
+@router.get("/fhir/Subscription/{sid}/$events", dependencies=[Depends(require("Subscription", "r"))])
 def events(sid: str, request: Request, ctx: ContextDep) -> Response:
     """Events by number, for a subscriber that saw a gap: eventsSinceNumber, eventsUntilNumber, content."""
     params = request.query_params

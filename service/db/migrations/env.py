@@ -5,7 +5,8 @@ from __future__ import annotations
 from alembic import context
 from sqlmodel import SQLModel
 
-import service.db.tables  # noqa: F401  (registers the tables on the metadata)
+import service.auth.tables  # noqa: F401  (registers the tables on the metadata)
+import service.db.tables  # noqa: F401
 
 config = context.config
 target_metadata = SQLModel.metadata

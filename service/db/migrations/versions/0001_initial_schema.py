@@ -16,6 +16,20 @@ depends_on = None
 
 def upgrade() -> None:
     
+    op.create_table('api_token',
+    sa.Column('id', sa.Integer(), nullable=False),
+    sa.Column('client', sa.String(length=64), nullable=False),
+    sa.Column('scope', sa.String(), nullable=False),
+    sa.Column('token_hash', sa.String(length=64), nullable=False),
+    sa.Column('created_at', sa.DateTime(timezone=True), nullable=False),
+    sa.Column('revoked_at', sa.DateTime(timezone=True), nullable=True),
+    sa.Column('last_used_at', sa.DateTime(timezone=True), nullable=True),
+    sa.PrimaryKeyConstraint('id'),
+    sa.UniqueConstraint('token_hash', name='uq_api_token_hash')
+    )
+    with op.batch_alter_table('api_token', schema=None) as batch_op:
+        batch_op.create_index(batch_op.f('ix_api_token_client'), ['client'], unique=False)
+
     op.create_table('audit_event',
     sa.Column('id', sa.String(), nullable=False),
     sa.Column('recorded', sa.DateTime(timezone=True), nullable=False),
@@ -240,4 +254,8 @@ def downgrade() -> None:
         batch_op.drop_index('ix_audit_client')
 
     op.drop_table('audit_event')
+    with op.batch_alter_table('api_token', schema=None) as batch_op:
+        batch_op.drop_index(batch_op.f('ix_api_token_client'))
+
+    op.drop_table('api_token')
     
