@@ -7,11 +7,11 @@ the end the recheck job runs once at the scenario's close.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import orjson
 
@@ -22,7 +22,10 @@ from service.fhir.normalise import parse_datetime
 from service.ingest import EntryRequest
 from service.main import build_context
 
-__all__ = ["DEFAULT_FEED", "DemoFlag", "run_demo"]
+if TYPE_CHECKING:
+    from service.api.context import AppContext
+
+__all__ = ["DEFAULT_FEED", "DemoFlag", "read_feed", "replay", "run_demo"]
 
 DEFAULT_FEED = Path(__file__).resolve().parents[1] / "fixtures" / "demo" / "ward.ndjson"
 _TRANSIT = timedelta(minutes=30)
@@ -39,6 +42,7 @@ class DemoFlag:
 
 
 def _arrivals(lines: list[dict[str, Any]]) -> Iterator[tuple[datetime, dict[str, Any]]]:
+    """Each resource with its arrival time, never earlier than the one before."""
     clock: datetime | None = None
     for resource in lines:
         when = _arrival(resource)
@@ -57,23 +61,39 @@ def _arrival(resource: dict[str, Any]) -> datetime:
     return parse_datetime(stamp) + _TRANSIT if stamp else datetime(2000, 1, 1, tzinfo=UTC)
 
 
+def read_feed(feed: Path) -> list[tuple[datetime, dict[str, Any]]]:
+    """The feed's resources with the time each arrives."""
+    lines = [orjson.loads(line) for line in feed.read_bytes().splitlines() if line.strip()]
+    return list(_arrivals(lines))
+
+
+def replay(ctx: AppContext, clock: FixedClock, arrivals: list[tuple[datetime, dict[str, Any]]],
+           end: datetime | None = None, between: Callable[[int], None] | None = None) -> int:
+    """Send each resource at its arrival time, running the time-driven recheck as the scheduler would;
+    ``between(i)`` runs after resource i (tests use it to deliver or to break the receiver). Returns
+    the number of resources stored."""
+    stored = 0
+    for i, (when, resource) in enumerate(arrivals):
+        clock.set(max(when, clock.now()))
+        result = ctx.ingestor.batch([EntryRequest(root="Bundle.entry[0].resource", resource=resource)],
+                                    raw=orjson.dumps(resource))[0]
+        stored += result.status in (200, 201) and result.location is not None
+        ctx.evaluator.recheck(ctx.db, clock.now())
+        if between is not None:
+            between(i)
+    close = end or (arrivals[-1][0] if arrivals else clock.now())
+    clock.set(max(close, clock.now()))
+    ctx.evaluator.recheck(ctx.db, clock.now())
+    return stored
+
+
 def run_demo(feed: Path, data_dir: Path, end: datetime | None = None) -> tuple[list[DemoFlag], int, int]:
     """Replay ``feed`` into a fresh store in ``data_dir``; returns every flag, entries sent and stored."""
-    lines = [orjson.loads(line) for line in feed.read_bytes().splitlines() if line.strip()]
-    timeline = list(_arrivals(lines))
-    clock = FixedClock(timeline[0][0] if timeline else datetime.now(UTC))
+    arrivals = read_feed(feed)
+    clock = FixedClock(arrivals[0][0] if arrivals else datetime.now(UTC))
     ctx = build_context(Settings(data_dir=data_dir, scheduler=False), clock=clock)
-    stored = 0
     try:
-        for when, resource in timeline:
-            clock.set(when)
-            result = ctx.ingestor.batch([EntryRequest(root="Bundle.entry[0].resource", resource=resource)],
-                                        raw=orjson.dumps(resource))[0]
-            stored += result.status in (200, 201) and result.location is not None
-            ctx.evaluator.recheck(ctx.db, when)  # what the scheduler would have done meanwhile
-        close = end or (timeline[-1][0] if timeline else clock.now())
-        clock.set(max(close, clock.now()))
-        ctx.evaluator.recheck(ctx.db, clock.now())
+        stored = replay(ctx, clock, arrivals, end)
         with ctx.db.session() as session:
             rows, _ = search_flags(session=session, q=FlagQuery(sort="date", count=10_000))
     finally:
@@ -87,4 +107,4 @@ def run_demo(feed: Path, data_dir: Path, end: datetime | None = None) -> tuple[l
         flags.append(DemoFlag(patient=subject, rule=f["code"]["coding"][0]["code"], priority=priority,
                               status=f["status"], start=f["period"]["start"], sentence=f["code"]["text"]))
     flags.sort(key=lambda d: (d.patient, d.start, d.rule))
-    return flags, len(lines), stored
+    return flags, len(arrivals), stored
