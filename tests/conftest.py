@@ -42,6 +42,16 @@ def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path / 'lytestream.db'}"
         return
+    yield from _postgres_schema()
+
+
+@pytest.fixture
+def postgres_url() -> Iterator[str]:
+    """A fresh schema on the PostgreSQL server, for tests that only make sense there."""
+    yield from _postgres_schema()
+
+
+def _postgres_schema() -> Iterator[str]:
     if _PG_SKIP:
         pytest.skip(_PG_SKIP)
     schema = f"t_{uuid.uuid4().hex[:12]}"
