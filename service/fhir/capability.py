@@ -8,6 +8,7 @@ from typing import Any
 from service import __version__
 from service.fhir.flag_render import CANONICAL_BASE, RULE_SYSTEM
 from service.fhir.render import CAUTION, fhir_instant
+from service.notify.topics import TOPICS
 
 __all__ = ["capability_statement"]
 
@@ -50,6 +51,13 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                     "and not stored. Patient entries only link identifiers. Creates and updates are keyed on "
                     "the business identifier: a resend is idempotent." + zone
                 ),
+                "security": {
+                    "service": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/restful-security-service",
+                                             "code": "SMART-on-FHIR"}]}],
+                    "description": "Bearer token on every interaction but metadata: SMART v2 system scopes "
+                                   "(v1 .read/.write accepted); tokens minted by this server or JWT access "
+                                   "tokens of the hospital's authorisation server.",
+                },
                 "interaction": [{"code": "transaction"}, {"code": "batch"}],
                 "resource": [
                     {
@@ -71,6 +79,11 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                         "versioning": "versioned",
                         "readHistory": True,
                         "searchInclude": ["Flag:detail"],
+                        "operation": [
+                            {"name": "acknowledge",
+                             "definition": f"{CANONICAL_BASE}/OperationDefinition/Flag-acknowledge"},
+                            {"name": "summary", "definition": f"{CANONICAL_BASE}/OperationDefinition/Flag-summary"},
+                        ],
                         "searchParam": [
                             _search("patient", "reference", "Patient/id, or patient:identifier=system|value"),
                             _search("date", "date", "the Flag's period overlaps the date"),
@@ -79,6 +92,35 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                             _search("code", "token", f"rule code ({RULE_SYSTEM})", ours=True),
                             _search("priority", "token", "PH | PM | PL (flag-priority)", ours=True),
                             _search("_count", "number", "page size"),
+                        ],
+                    },
+                    {
+                        "type": "Subscription",
+                        "documentation": "Topic-based (Subscriptions R5 Backport on R4): rest-hook, id-only by "
+                                         "default, R4 Parameters or R4B SubscriptionStatus notifications.",
+                        "extension": [
+                            {"url": "http://hl7.org/fhir/uv/subscriptions-backport/StructureDefinition/"
+                                    "capabilitystatement-subscriptiontopic-canonical", "valueCanonical": topic}
+                            for topic in TOPICS
+                        ],
+                        "interaction": [{"code": c} for c in ("create", "read", "update", "delete", "search-type")],
+                        "operation": [
+                            {"name": "status", "definition": "http://hl7.org/fhir/uv/subscriptions-backport/"
+                                                             "OperationDefinition/backport-subscription-status"},
+                            {"name": "events", "definition": "http://hl7.org/fhir/uv/subscriptions-backport/"
+                                                             "OperationDefinition/backport-subscription-events"},
+                        ],
+                    },
+                    {
+                        "type": "AuditEvent",
+                        "documentation": "Append-only, after IHE BALP: every ingest request, Flag access, "
+                                         "acknowledgement and subscription change.",
+                        "interaction": [{"code": "search-type"}],
+                        "searchParam": [
+                            _search("date", "date", "when it was recorded"),
+                            _search("agent", "token", "the client the token names"),
+                            _search("patient", "reference", "Patient/id, or patient:identifier=system|value"),
+                            _search("subtype", "token", "interaction or operation code"),
                         ],
                     },
                     {

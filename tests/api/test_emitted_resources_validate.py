@@ -40,3 +40,23 @@ def test_search_history_and_read_validate(client: TestClient) -> None:
     valid(client.get(path).json())
     valid(client.get(f"{path}/_history").json())
     valid(client.get("/fhir/Observation?patient=Patient/p1").json())
+
+
+def test_capability_statement_advertises_both_subscription_topics(client: TestClient) -> None:
+    body = client.get("/fhir/metadata").json()
+    sub = next(r for r in body["rest"][0]["resource"] if r["type"] == "Subscription")
+    topics = {e["valueCanonical"] for e in sub["extension"]}
+    assert topics == {"https://lytestream.example/fhir/SubscriptionTopic/flag-changed",
+                      "https://lytestream.example/fhir/SubscriptionTopic/flag-escalated"}
+
+
+def test_served_subscription_validates(client: TestClient) -> None:
+    from tests.api.test_subscriptions import subscription
+
+    import orjson
+
+    created = client.post("/fhir/Subscription", content=orjson.dumps(subscription()), headers=HEADERS).json()
+    valid(created)
+    valid(client.get(f"/fhir/Subscription/{created['id']}").json())
+    valid(client.get("/fhir/Subscription").json())
+    valid(client.get(f"/fhir/Subscription/{created['id']}/$status").json())

@@ -215,3 +215,24 @@ def test_delete_turns_the_subscription_off(client: TestClient, hook: Any) -> Non
     sub = subscribe(client)
     assert client.delete(f"/fhir/Subscription/{sub['id']}").status_code == 204
     assert client.get(f"/fhir/Subscription/{sub['id']}").json()["status"] == "off"
+
+
+def test_idle_subscription_gets_heartbeats_that_do_not_count_as_events(
+    client: TestClient, context: AppContext, clock: FixedClock, hook: Any
+) -> None:
+    from service.jobs import run_job
+
+    hook.respond(200)
+    sub = subscription()
+    sub["channel"]["extension"] = [{"url": f"{SD}/backport-heartbeat-period", "valueUnsignedInt": 60}]
+    created = client.post("/fhir/Subscription", content=orjson.dumps(sub), headers=HEADERS).json()
+    context.dispatcher.run_once()
+    assert run_job(context, "queue-heartbeats") == 0  # just sent the handshake
+    clock.advance(timedelta(seconds=61))
+    assert run_job(context, "queue-heartbeats") == 1
+    assert run_job(context, "queue-heartbeats") == 0  # one is already queued
+    context.dispatcher.run_once()
+    beat = params_of(received(hook)[-1])
+    assert beat["type"]["valueCode"] == "heartbeat"
+    assert beat["events-since-subscription-start"]["valueString"] == "0"
+    assert client.get(f"/fhir/Subscription/{created['id']}").json()["status"] == "active"
