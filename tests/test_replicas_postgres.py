@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 import subprocess
 import sys
 import time
@@ -15,35 +14,20 @@ import pytest
 
 from tests.factories import HEADERS, bundle, dumps, observation
 from tests.test_delivery_loopback import Receiver, event_numbers
-from tests.test_durability import free_port
+from tests.servers import clean_env, free_port, start_server
 
 pytestmark = [pytest.mark.slow, pytest.mark.postgres]
 
 
 def env(database_url: str) -> dict[str, str]:
-    base = {k: v for k, v in os.environ.items() if not k.startswith("LYTESTREAM_")}
-    return {**base, "LYTESTREAM_DATABASE_URL": database_url, "LYTESTREAM_ALLOW_HTTP_ENDPOINTS": "true",
-            "LYTESTREAM_DELIVER_SECONDS": "0.2", "LYTESTREAM_RECHECK_SECONDS": "3600"}
+    return clean_env(LYTESTREAM_DATABASE_URL=database_url, LYTESTREAM_ALLOW_HTTP_ENDPOINTS="true",
+                     LYTESTREAM_DELIVER_SECONDS="0.2", LYTESTREAM_RECHECK_SECONDS="3600")
 
 
 def cli(database_url: str, *args: str) -> str:
     out = subprocess.run([sys.executable, "-m", "service", *args], capture_output=True, text=True, check=True,
                          env=env(database_url))
     return out.stdout.strip()
-
-
-def serve(database_url: str, port: int) -> subprocess.Popen[bytes]:
-    proc = subprocess.Popen([sys.executable, "-m", "service", "serve", "--port", str(port)],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env(database_url))
-    deadline = time.monotonic() + 30
-    while time.monotonic() < deadline:
-        try:
-            if httpx.get(f"http://127.0.0.1:{port}/readyz", timeout=1).status_code == 200:
-                return proc
-        except httpx.TransportError:
-            time.sleep(0.1)
-    proc.kill()
-    raise AssertionError("server did not become ready")
 
 
 def test_two_replicas_deliver_each_event_once(postgres_url: str) -> None:
@@ -54,7 +38,7 @@ def test_two_replicas_deliver_each_event_once(postgres_url: str) -> None:
     receiver = Receiver()
     receiver.up()
     ports = [free_port(), free_port()]
-    procs = [serve(database_url, p) for p in ports]
+    procs = [start_server(p, env=env(database_url)) for p in ports]
     try:
         sub: dict[str, Any] = {
             "resourceType": "Subscription", "status": "requested", "reason": "pager",

@@ -58,6 +58,13 @@ def params_of(notification: dict[str, Any]) -> dict[str, Any]:
     return {p["name"]: p for p in notification["entry"][0]["resource"]["parameter"]}
 
 
+def exhaust_attempts(context: AppContext, clock: FixedClock) -> None:
+    """Run the dispatcher past every allowed attempt, waiting out each backoff."""
+    for _ in range(context.settings.delivery_max_attempts + 1):
+        context.dispatcher.run_once()
+        clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
+
+
 @pytest.fixture
 def hook() -> Any:
     with respx.mock(assert_all_called=False) as mock:
@@ -81,7 +88,7 @@ def test_each_flag_change_is_one_numbered_event(client: TestClient, context: App
     subscribe(client)
     context.dispatcher.run_once()
     raise_flag(client)  # raises sodium-critical-low
-    raise_flag(client, value=138)  # ... corrected? no: a resend with a new value of the same final: update
+    raise_flag(client, value=138)  # the same result re-issued at 138: the flag closes (change 2)
     context.dispatcher.run_once()
     events = [params_of(n) for n in received(hook)[1:]]
     numbers = [next(p["valueString"] for p in e["notification-event"]["part"] if p["name"] == "event-number")
@@ -128,9 +135,7 @@ def test_after_the_last_attempt_the_subscription_is_in_error_and_keeps_counting(
     hook.side_effect = None
     hook.mock(side_effect=httpx.ConnectError("refused"))
     raise_flag(client)
-    for _ in range(context.settings.delivery_max_attempts + 1):
-        context.dispatcher.run_once()
-        clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
+    exhaust_attempts(context, clock)
     served = client.get(f"/fhir/Subscription/{sub['id']}").json()
     assert served["status"] == "error" and "connect" in served["error"]
     raise_flag(client, ident="b", patient="Patient/p2")  # still counted while in error
@@ -148,9 +153,7 @@ def test_reactivation_resends_a_handshake_then_the_missed_events(
     context.dispatcher.run_once()
     hook.mock(side_effect=httpx.ConnectError("refused"))
     raise_flag(client)
-    for _ in range(context.settings.delivery_max_attempts + 1):
-        context.dispatcher.run_once()
-        clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
+    exhaust_attempts(context, clock)
     hook.mock(side_effect=None, return_value=httpx.Response(200))
     body = {**subscription(), "status": "requested"}
     assert client.put(f"/fhir/Subscription/{sub['id']}", content=orjson.dumps(body), headers=HEADERS).status_code == 200
