@@ -19,7 +19,6 @@ from service.db.flags import (
     open_flags,
     patients_to_recheck,
     subjects,
-    withdrawn_references,
     write_changes,
 )
 from service.db.timeline import load_timelines
@@ -47,11 +46,10 @@ class Evaluator:
         keys = sorted(set(patient_keys))
         timelines = load_timelines(session=session, patient_keys=keys, end=now, lookback=self.lookback)
         opened = open_flags(session=session, patient_keys=keys)
-        withdrawn = withdrawn_references(session=session, patient_keys=keys)
         changes: list[FlagChange] = []
         for key in keys:
             findings = evaluate(timelines[key], self.policy, now)
-            changes += reconcile(findings, opened.get(key, []), withdrawn, now)
+            changes += reconcile(findings, opened.get(key, []), timelines[key].withdrawn, now)
         if not changes:
             return []
         subject_of = subjects(session=session, patient_keys=keys)

@@ -15,6 +15,7 @@ from datetime import datetime
 from typing import Any
 from urllib.parse import parse_qsl
 
+import orjson
 from sqlalchemy.exc import IntegrityError
 from sqlmodel import Session
 
@@ -28,7 +29,7 @@ from service.domain.insulin import InsulinCodes
 from service.domain.versions import Decision
 from service.errors import Issue, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
-from service.fhir.datetimes import fix_offsetless
+from service.fhir.datetimes import OFFSETLESS_JSON, fix_offsetless
 from service.fhir.normalise import (
     IncomingInsulin,
     IncomingObservation,
@@ -220,12 +221,15 @@ class Ingestor:
         found = triage(resource, self.insulin)
         if found.kind is Kind.IGNORED:
             return _Prepared(Kind.IGNORED, [], reason=found.reason)
-        warnings = fix_offsetless(resource, e.root, self.settings.lab_timezone)
+        # One cheap serialisation tells whether the two tree walks below can find anything at all.
+        blob = orjson.dumps(resource)
+        warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone)
+                    if OFFSETLESS_JSON.search(blob) else [])
         errors = [w for w in warnings if w.severity == "error"]
         # The models would repeat each offset error less clearly; keep ours.
         seen = {x for w in errors for x in w.expression}
         errors += [i for i in validate_resource(resource, e.root) if not seen.intersection(i.expression)]
-        if full_urls or identities:
+        if b'"urn:' in blob:
             errors += urn_references(resource, e.root, full_urls)
         if errors:
             raise Invalid(errors)

@@ -301,7 +301,8 @@ def summarise(facts: SummaryFacts, *, start: datetime, end: datetime) -> Summary
         flags_per_patient_day=n / len(patient_days) if patient_days else None,
         result_to_flag=_latency([line.seconds_result_to_flag for line in lines
                                  if line.seconds_result_to_flag is not None]),
-        flag_to_ack=_latency([line.seconds_flag_to_ack for line in lines if line.seconds_flag_to_ack is not None]),
+        flag_to_ack=_latency([line.seconds_flag_to_ack for line in lines
+                              if line.seconds_flag_to_ack is not None]),
         unacknowledged=sum(1 for line in lines if line.first_acknowledged_at is None),
         escalations=sum(line.escalations for line in lines),
         flags_escalated=sum(1 for line in lines if line.escalations),

@@ -11,16 +11,15 @@ import orjson
 from sqlalchemy import insert, or_, select, update
 from sqlmodel import Session
 
-from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
+from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag, WithdrawFlag
 from service.fhir.flag_render import FlagView, render_flag
 
-__all__ = ["FlagWrite", "open_flags", "subjects", "withdrawn_references", "write_changes"]
+__all__ = ["FlagWrite", "open_flags", "patients_to_recheck", "subjects", "write_changes"]
 
 _FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
-_OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
 _INS = InsulinRecord.__table__  # type: ignore[attr-defined]
 _ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
 
@@ -41,17 +40,6 @@ def open_flags(*, session: Session, patient_keys: Iterable[str]) -> dict[str, li
                 encounter=r.encounter,
             ))
     return out
-
-
-def withdrawn_references(*, session: Session, patient_keys: Iterable[str]) -> set[str]:
-    """Versionless references of these patients' records that were entered in error."""
-    keys = sorted(set(patient_keys))
-    refs: set[str] = set()
-    for table, rtype in ((_OBS, "Observation"), (_INS, "MedicationAdministration")):
-        rows = session.execute(select(table.c.id).where(
-            table.c.patient_key.in_(keys), table.c.status == "entered-in-error"))
-        refs.update(f"{rtype}/{rid}" for (rid,) in rows)
-    return refs
 
 
 def subjects(*, session: Session, patient_keys: Iterable[str]) -> dict[str, dict[str, Any]]:

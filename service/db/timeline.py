@@ -49,7 +49,10 @@ def load_timelines(
     ).all()
     replaced = {r.replaces for r in rows if r.replaces and r.status != ResultStatus.ENTERED_IN_ERROR}
     results: dict[str, list[LabResult]] = {k: [] for k in keys}
+    withdrawn: dict[str, set[str]] = {k: set() for k in keys}
     for r in rows:
+        if r.status == ResultStatus.ENTERED_IN_ERROR:
+            withdrawn[r.patient_key].add(f"Observation/{r.id}")
         if (r.status in _UNUSABLE or r.value is None or f"Observation/{r.id}" in replaced
                 or f"id:{r.identifier_system}|{r.identifier_value}" in replaced):
             continue
@@ -61,6 +64,8 @@ def load_timelines(
         ))
     exposures: dict[str, list[InsulinExposure]] = {k: [] for k in keys}
     for x in exposure_rows:
+        if x.status == "entered-in-error":
+            withdrawn[x.patient_key].add(f"MedicationAdministration/{x.id}")
         if x.status in _EXPOSURE_UNUSABLE:
             continue
         exposures[x.patient_key].append(InsulinExposure(
@@ -69,6 +74,6 @@ def load_timelines(
         ))
     return {
         k: Timeline(patient=k, window_start=start, window_end=end, results=tuple(results[k]),
-                    exposures=tuple(exposures[k]))
+                    exposures=tuple(exposures[k]), withdrawn=frozenset(withdrawn[k]))
         for k in keys
     }

@@ -111,6 +111,9 @@ class Timeline:
     window_end: datetime
     results: tuple[LabResult, ...] = field(default_factory=tuple)
     exposures: tuple[InsulinExposure, ...] = field(default_factory=tuple)
+    # Versionless references ("Observation/x") of records in the window that were entered in error:
+    # a flag resting only on them is withdrawn rather than closed.
+    withdrawn: frozenset[str] = frozenset()
 
     def of(self, analyte: Analyte, *specimens: Specimen) -> tuple[LabResult, ...]:
         """The results of one analyte, optionally only from the given specimens, in time order."""

@@ -13,9 +13,11 @@ from zoneinfo import ZoneInfo
 
 from service.errors import Issue
 
-__all__ = ["fix_offsetless"]
+__all__ = ["OFFSETLESS_JSON", "fix_offsetless"]
 
 _NO_OFFSET = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}(:\d{2}(\.\d+)?)?$")
+# The same, as a JSON string anywhere in serialised bytes: when it finds nothing, nothing needs walking.
+OFFSETLESS_JSON = re.compile(rb'"\d{4}-\d{2}-\d{2}T\d{2}:\d{2}(:\d{2}(\.\d+)?)?"')
 
 
 def fix_offsetless(resource: dict[str, Any], root: str, zone: str | None) -> list[Issue]:
