@@ -8,6 +8,7 @@ from typing import Annotated, Any
 import typer
 from rich.console import Console
 
+from service.audit_cli import audit_app
 from service.auth.cli import token_app
 from service.config import Settings
 
@@ -18,6 +19,7 @@ app.add_typer(db_app, name="db")
 policy_app = typer.Typer(help="Site policy (thresholds).", no_args_is_help=True)
 app.add_typer(policy_app, name="policy")
 app.add_typer(token_app, name="token")
+app.add_typer(audit_app, name="audit")
 console = Console(stderr=True)
 
 DatabaseUrl = Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
@@ -39,18 +41,29 @@ def serve(
     port: Annotated[int, typer.Option(help="TCP port")] = 8080,
     database_url: DatabaseUrl = None,
     data_dir: DataDir = None,
+    workers: Annotated[int, typer.Option(min=1, max=64, help="worker processes (one per core)")] = 1,
 ) -> None:
     """Run the FHIR service (migrates the schema first)."""
+    import os
+
     import uvicorn
 
-    from service.main import create_app
+    from service.db.engine import Database
 
     settings = _settings(database_url, data_dir)
     if "base_url" not in settings.model_fields_set:
         settings = settings.model_copy(update={"base_url": f"http://{host}:{port}/fhir"})
-    console.print(f"lytestream on http://{host}:{port}/fhir — database {_safe_url(settings)}")
+    # Migrate once here, before any worker starts; the workers read the same settings from the environment.
+    db = Database(settings.resolved_database_url)
+    db.create_schema()
+    db.dispose()
+    os.environ["LYTESTREAM_DATABASE_URL"] = settings.resolved_database_url
+    os.environ["LYTESTREAM_DATA_DIR"] = str(settings.data_dir)
+    os.environ["LYTESTREAM_BASE_URL"] = settings.base_url
+    console.print(f"lytestream on http://{host}:{port}/fhir — database {_safe_url(settings)}, {workers} worker(s)")
     console.print("[dim]Decision support only: thresholds are site policy; defer to local protocols.[/dim]")
-    uvicorn.run(create_app(settings), host=host, port=port, log_level="info")
+    uvicorn.run("service.main:app_from_environment", factory=True, host=host, port=port, workers=workers,
+                log_level="warning", access_log=False)
 
 
 @app.command()

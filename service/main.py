@@ -17,7 +17,7 @@ from starlette.exceptions import HTTPException
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
 from service.auth.deps import Authenticator, install_auth
-from service.api.routes import audit, flags, ingest, meta, read, subscriptions
+from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
 from service.clock import Clock, SystemClock
 from service.config import Settings
 from service.db.engine import Database
@@ -28,7 +28,7 @@ from service.ingest import Ingestor
 from service.jobs import start_scheduler
 from service.policy import load_policy
 
-__all__ = ["build_context", "create_app"]
+__all__ = ["app_from_environment", "build_context", "create_app"]
 
 log = logging.getLogger("lytestream")
 
@@ -50,6 +50,11 @@ def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bo
                       evaluator=evaluator, dispatcher=dispatcher)
 
 
+def app_from_environment() -> FastAPI:
+    """The uvicorn factory for `lytestream serve`: settings from LYTESTREAM_*; the CLI migrated first."""
+    return create_app(context=build_context(Settings(), migrate=False))
+
+
 def create_app(settings: Settings | None = None, *, context: AppContext | None = None) -> FastAPI:
     ctx = context or build_context(settings or Settings())
     @asynccontextmanager
@@ -67,6 +72,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     authenticator = Authenticator(ctx.settings.auth, db=ctx.db, clock=ctx.clock)
     install_auth(app, authenticator)
     app.include_router(meta.router)
+    app.include_router(summary.router)  # before read.router: /fhir/Flag/$summary is not a Flag id
     app.include_router(ingest.router)
     app.include_router(flags.router)
     app.include_router(audit.router)

@@ -10,11 +10,9 @@ import httpx
 import orjson
 import pytest
 import respx
-from fastapi import FastAPI
 from fastapi.testclient import TestClient
 
 from service.api.context import AppContext
-from service.api.routes import summary as summary_routes
 from service.auth.tokens import mint
 from service.clock import FixedClock
 from service.fhir.render import CAUTION
@@ -27,21 +25,10 @@ HOOK = "https://pager.example.org/summary-hook"
 SD = "http://hl7.org/fhir/uv/subscriptions-backport/StructureDefinition"
 
 
-def summary_app(ctx: AppContext) -> FastAPI:
-    """The service with the $summary router placed ahead of every other route, as main.py must place it."""
-    app = create_app(context=ctx)
-    before = len(app.router.routes)
-    app.include_router(summary_routes.router)
-    added = app.router.routes[before:]
-    del app.router.routes[before:]
-    app.router.routes[0:0] = added
-    return app
-
-
 def client_for(ctx: AppContext, scope: str) -> TestClient:
     with ctx.db.session(write=True) as session:
         token = mint(session, client="test-suite", scope=scope, now=ctx.clock.now())
-    return TestClient(summary_app(ctx), headers={"Authorization": f"Bearer {token}"})
+    return TestClient(create_app(context=ctx), headers={"Authorization": f"Bearer {token}"})
 
 
 @pytest.fixture
@@ -79,7 +66,8 @@ def ward(api: TestClient, context: AppContext, clock: FixedClock) -> dict[str, A
     12:16  escalation: only the potassium Flag is unacknowledged        (1 escalation, 1 flag)
     """
     send(api, observation("na1", value=118, patient="Patient/p1", issued="2026-03-02T11:50:00+00:00"),
-         observation("k1", code="2823-3", value=6.9, patient="Patient/p2", issued="2026-03-02T11:58:00+00:00"),
+         observation("k1", code="2823-3", value=6.9, patient="Patient/p2",
+                     issued="2026-03-02T11:58:00+00:00"),
          observation("na2", value=138, patient="Patient/p3"))
     sodium = flag_of(api, "sodium-critical-low")
     clock.advance(timedelta(minutes=5))
@@ -114,7 +102,8 @@ def test_result_to_flag_runs_from_issued(ward: dict[str, Any]) -> None:
 
 def test_flag_to_acknowledgement_is_the_time_the_clock_moved(ward: dict[str, Any]) -> None:
     ack = ward["flag_to_acknowledgement"]
-    assert (ack["count"], ack["median_seconds"], ack["p90_seconds"], ack["unacknowledged"]) == (1, 300.0, 300.0, 1)
+    figures = (ack["count"], ack["median_seconds"], ack["p90_seconds"], ack["unacknowledged"])
+    assert figures == (1, 300.0, 300.0, 1)
 
 
 def test_only_the_unacknowledged_flag_was_escalated(ward: dict[str, Any]) -> None:
@@ -129,7 +118,8 @@ def test_the_summary_carries_the_caution(ward: dict[str, Any]) -> None:
     assert ward["caution"] == CAUTION
 
 
-def test_a_range_ending_before_the_flags_were_raised_counts_none(ward: dict[str, Any], api: TestClient) -> None:
+def test_a_range_ending_before_the_flags_were_raised_counts_none(ward: dict[str, Any],
+                                                                 api: TestClient) -> None:
     early = summary(api, "start=2026-03-02&end=2026-03-02T12:00:00Z")
     assert (ward["flags_raised"], early["flags_raised"]) == (2, 0)
 
@@ -166,9 +156,11 @@ def test_an_unknown_parameter_is_a_400(api: TestClient) -> None:
 
 
 def subscribe(api: TestClient) -> None:
-    sub = {"resourceType": "Subscription", "status": "requested", "reason": "summary test", "criteria": FLAG_CHANGED,
+    content = {"url": f"{SD}/backport-payload-content", "valueCode": "id-only"}
+    sub = {"resourceType": "Subscription", "status": "requested", "reason": "summary test",
+           "criteria": FLAG_CHANGED,
            "channel": {"type": "rest-hook", "endpoint": HOOK, "payload": "application/fhir+json",
-                       "_payload": {"extension": [{"url": f"{SD}/backport-payload-content", "valueCode": "id-only"}]}}}
+                       "_payload": {"extension": [content]}}}
     r = api.post("/fhir/Subscription", content=orjson.dumps(sub), headers=HEADERS)
     assert r.status_code == 201, r.text
 
@@ -196,12 +188,13 @@ def test_a_retried_delivery_counts_as_delivered_and_retried(
 def test_a_delivery_given_up_counts_as_failed(
     api: TestClient, context: AppContext, clock: FixedClock, hook: respx.Route
 ) -> None:
-    hook.side_effect = [httpx.Response(200)] + [httpx.ConnectError("refused")] * context.settings.delivery_max_attempts
+    tries = context.settings.delivery_max_attempts
+    hook.side_effect = [httpx.Response(200)] + [httpx.ConnectError("refused")] * tries
     subscribe(api)
     context.dispatcher.run_once()
     send(api, observation("na1", value=118))
-    for _ in range(context.settings.delivery_max_attempts + 1):
+    for _ in range(tries + 1):
         context.dispatcher.run_once()
         clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
     n = summary(api, "start=2026-03-02&end=2026-03-04")
-    assert (n["notifications"]["failed"], n["notifications"]["attempts"]) == (1, 1 + context.settings.delivery_max_attempts)
+    assert (n["notifications"]["failed"], n["notifications"]["attempts"]) == (1, 1 + tries)
