@@ -41,18 +41,35 @@ class Server:
     def headers(self) -> dict[str, str]:
         return {**_HEADERS, "authorization": f"Bearer {self.token}"} if self.token else dict(_HEADERS)
 
+    def processes(self) -> list[int]:
+        """The server's supervisor and its worker processes."""
+        pids = [self.pid]
+        for task in Path(f"/proc/{self.pid}/task").iterdir():
+            children = (task / "children").read_text().split()
+            pids += [int(c) for c in children]
+        return pids
+
     def peak_rss_mb(self) -> float:
-        """VmHWM of the server process: the most resident memory it has held, in MiB."""
-        for line in Path(f"/proc/{self.pid}/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024.0
-        raise RuntimeError("VmHWM not reported by /proc for the server process")
+        """The largest VmHWM of any server process (supervisor or worker): peak resident memory, in MiB."""
+        return max(_vmhwm_mb(pid) for pid in self.processes())
 
     def cpu_seconds(self) -> float:
-        """User + system CPU time the server process has used so far (all its threads)."""
-        fields = Path(f"/proc/{self.pid}/stat").read_text().rsplit(")", 1)[1].split()
-        utime, stime = int(fields[11]), int(fields[12])  # fields 14 and 15 of proc(5), after pid and comm
-        return (utime + stime) / os.sysconf("SC_CLK_TCK")
+        """CPU time of the supervisor and every worker."""
+        return sum(_cpu_seconds(pid) for pid in self.processes())
+
+
+def _vmhwm_mb(pid: int) -> float:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024.0
+    raise RuntimeError("VmHWM not reported by /proc for the server process")
+
+
+def _cpu_seconds(pid: int) -> float:
+    """User + system CPU time one process has used so far (all its threads)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    utime, stime = int(fields[11]), int(fields[12])  # fields 14 and 15 of proc(5), after pid and comm
+    return (utime + stime) / os.sysconf("SC_CLK_TCK")
 
 
 @dataclass(frozen=True)
@@ -127,6 +144,9 @@ def mint_token(data_dir: Path, *, cwd: Path) -> str | None:
     return done.stdout.strip()
 
 
+WORKERS = int(os.environ.get("BENCH_WORKERS", os.cpu_count() or 1))  # `serve --workers`: one per core
+
+
 @contextmanager
 def server(data_dir: Path, *, cwd: Path) -> Iterator[Server]:
     """A lytestream server on a free loopback port, storing in ``data_dir`` (SQLite); stopped on exit."""
@@ -135,8 +155,8 @@ def server(data_dir: Path, *, cwd: Path) -> Iterator[Server]:
     base_url = f"http://{HOST}:{port}"
     log = data_dir.parent / f"{data_dir.name}-server.log"
     env = {**os.environ, "LYTESTREAM_DATA_DIR": str(data_dir), "LYTESTREAM_BASE_URL": f"{base_url}/fhir"}
-    cmd = [sys.executable, "-m", "uvicorn", "--factory", "service.main:create_app", "--host", HOST,
-           "--port", str(port), "--log-level", "warning", "--no-access-log"]
+    cmd = [sys.executable, "-m", "service", "serve", "--host", HOST, "--port", str(port),
+           "--data-dir", str(data_dir), "--workers", str(WORKERS)]
     with log.open("wb") as out:
         proc = subprocess.Popen(cmd, cwd=cwd, env=env, stdout=out, stderr=subprocess.STDOUT)
     try:
