@@ -29,7 +29,7 @@ def _model(resource_type: str) -> Any:
 # Observation, later Observations carrying the same combination need only the rest validated, with
 # a stand-in code to keep the required element present. Same issues as a full validation, a
 # property test says; about twice as fast on a lab feed.
-_REPEATED = ("category", "code", "encounter", "performer", "referenceRange", "interpretation", "specimen")
+_REPEATED = ("category", "code", "performer", "referenceRange", "interpretation", "method", "device")
 _STAND_IN_CODE = {"text": "validated"}
 _known_good: OrderedDict[bytes, None] = OrderedDict()
 _KNOWN_GOOD_MAX = 4096
