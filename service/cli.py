@@ -149,11 +149,13 @@ def replay(
     file: Annotated[Path, typer.Argument(help="FHIR NDJSON: one resource per line", exists=True, dir_okay=False)],
     url: Annotated[str, typer.Option(help="FHIR base URL of the service")] = "http://127.0.0.1:8080/fhir",
     bundle_size: Annotated[int, typer.Option(min=1, max=1000, help="resources per transaction")] = 100,
+    token: Annotated[str | None, typer.Option(envvar="LYTESTREAM_TOKEN", show_default=False,
+                                              help="bearer token (scope system/Observation.cu …)")] = None,
 ) -> None:
     """Send a feed as idempotent transaction Bundles (conditional update by identifier)."""
     from service.replay import replay_file
 
-    summary = replay_file(file, url, bundle_size=bundle_size, console=console)
+    summary = replay_file(file, url, bundle_size=bundle_size, console=console, token=token)
     typer.echo(f"accepted {summary.accepted} rejected {summary.rejected} of {summary.total} entries")
     for line in summary.errors[:20]:
         typer.echo(line)

@@ -70,10 +70,11 @@ def _describe(outcome: dict[str, Any]) -> str:
 
 
 def replay_file(path: Path, base_url: str, *, bundle_size: int, console: Console,
-                client: httpx.Client | None = None) -> ReplaySummary:
+                client: httpx.Client | None = None, token: str | None = None) -> ReplaySummary:
     summary = ReplaySummary()
     own = client is None
-    http = client or httpx.Client(timeout=60.0)
+    auth = {"Authorization": f"Bearer {token}"} if token else {}
+    http = client or httpx.Client(timeout=60.0, headers=auth)
     try:
         with Progress(console=console, transient=True) as progress:
             task = progress.add_task("replaying", total=None)

@@ -107,6 +107,9 @@ def _configure_sqlite(engine: Engine) -> None:
         cur = dbapi_connection.cursor()
         cur.execute("PRAGMA journal_mode=WAL")
         cur.execute("PRAGMA synchronous=FULL")
+        # 32 MiB of page cache per connection (the default is 2 MiB): with a million results stored,
+        # index pages of the hot tables stay in memory. Measured in bench/ at 1 M stored.
+        cur.execute("PRAGMA cache_size=-32768")
         cur.execute("PRAGMA foreign_keys=ON")
         cur.close()
 
