@@ -85,6 +85,7 @@ class FeedFigures:
     validation_rate: float
     inprocess_rate: float
     http: HttpFigures
+    inprocess_no_rules_rate: float  # the same path with re-evaluation off: what the rules cost
 
 
 class CheckFailed(RuntimeError):
@@ -144,12 +145,15 @@ def _check_transaction(results: Sequence[Any], sent: int) -> int:
     return sum(1 for r in results if r.status == 201)
 
 
-def inprocess_rate(feed: Feed, warm: Feed, work: Path) -> float:
+def inprocess_rate(feed: Feed, warm: Feed, work: Path, *, rules: bool = True) -> float:
     """Results/s of Ingestor.transaction over the feed's Bundles, fresh SQLite store, no HTTP.
 
-    Bundles are parsed into entries before timing: parsing is the HTTP layer's share.
+    Bundles are parsed into entries before timing: parsing is the HTTP layer's share. ``rules=False``
+    takes the re-evaluation hook out, to show what the rules and flags cost on the same data.
     """
-    ctx = _fresh_ingestor(work / f"inproc-{feed.name}")
+    ctx = _fresh_ingestor(work / f"inproc-{feed.name}{'' if rules else '-no-rules'}")
+    if not rules:
+        ctx.ingestor.on_change = None
     try:
         for raw in warm.bundles:
             ctx.ingestor.transaction(_entries(raw), raw=raw)
@@ -312,6 +316,9 @@ def _report(figures: list[FeedFigures], stored: HttpFigures, sizes: Sizes, store
         f"{'server peak RSS (VmHWM), worst of all HTTP runs':<58}{peak:>7.0f} MB{TARGET_PEAK_RSS_MB:>7.0f} MB  "
         f"{_verdict(peak <= TARGET_PEAK_RSS_MB)}",
         "",
+        f"rules on / rules off, in-process: all-relevant {base.inprocess_rate / base.inprocess_no_rules_rate:.2f}x "
+        f"({base.inprocess_no_rules_rate:,.0f}/s off), panel {panel.inprocess_rate / panel.inprocess_no_rules_rate:.2f}x "
+        f"({panel.inprocess_no_rules_rate:,.0f}/s off)",
         f"in-process / validation-only: all-relevant {base.inprocess_rate / base.validation_rate:.2f}x, "
         f"panel {panel.inprocess_rate / panel.validation_rate:.2f}x; "
         f"HTTP / in-process: all-relevant {base.http.rate / base.inprocess_rate:.2f}x, "
@@ -355,9 +362,11 @@ def run(sizes: Sizes, *, seed: int) -> int:
             v = validation_rate(feed, warm)
             _progress(f"{feed.name}: in-process ingest")
             ip = inprocess_rate(feed, warm, work)
+            _progress(f"{feed.name}: in-process ingest, rules off")
+            ip_bare = inprocess_rate(feed, warm, work, rules=False)
             _progress(f"{feed.name}: HTTP ingest, {len(feed.bundles)} Bundles, {sizes.clients} clients")
             http = http_figures(feed, warm, work / f"http-{feed.name}", sizes)
-            figures.append(FeedFigures(feed, v, ip, http))
+            figures.append(FeedFigures(feed, v, ip, http, ip_bare))
         feed, warm = feeds[0]
         stored_dir = work / "http-stored"
         _progress(f"pre-filling the store with {sizes.stored} results")
