@@ -53,6 +53,10 @@ def served_subscription(row: Any) -> dict[str, Any]:
     body["id"] = row.id
     body["meta"] = {"versionId": str(row.version_id), "lastUpdated": fhir_instant(row.last_updated)}
     body["status"] = row.status
+    channel = body.get("channel") or {}
+    if channel.get("header"):
+        # Headers usually carry the subscriber's credentials: never echoed back to readers.
+        channel["header"] = [f"{h.split(':', 1)[0]}: (withheld)" for h in channel["header"]]
     if row.error:
         body["error"] = row.error
     else:

@@ -239,3 +239,10 @@ def test_idle_subscription_gets_heartbeats_that_do_not_count_as_events(
     assert beat["type"]["valueCode"] == "heartbeat"
     assert beat["events-since-subscription-start"]["valueString"] == "0"
     assert client.get(f"/fhir/Subscription/{created['id']}").json()["status"] == "active"
+
+
+def test_channel_header_values_are_never_served_back(client: TestClient, hook: Any) -> None:
+    created = subscribe(client)
+    assert created["channel"]["header"] == ["Authorization: (withheld)"]
+    listed = client.get("/fhir/Subscription").json()["entry"][0]["resource"]
+    assert "pager-secret" not in orjson.dumps(listed).decode()
