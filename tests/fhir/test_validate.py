@@ -51,7 +51,12 @@ def _apply(obs: dict[str, Any], path: tuple[str | int, ...], value: Any) -> dict
     out = copy.deepcopy(obs)
     node: Any = out
     for part in path[:-1]:
-        node = node[part]
+        try:
+            node = node[part]
+        except (KeyError, IndexError, TypeError):
+            return out  # an earlier break already removed this branch
+        if not isinstance(node, (dict, list)):
+            return out
     if value is None:
         node.pop(path[-1], None)
     else:
@@ -59,7 +64,7 @@ def _apply(obs: dict[str, Any], path: tuple[str | int, ...], value: Any) -> dict
     return out
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=80, deadline=None)
 @given(breaks=st.lists(st.sampled_from(BREAKS), max_size=3), warm=st.booleans())
 def test_shortcut_gives_the_same_issues_as_a_full_validation(breaks: list[Any], warm: bool) -> None:
     if warm:  # the repeated elements of the base have passed once before
