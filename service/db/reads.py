@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import datetime
+from typing import Any
 
 from sqlalchemy import and_, func, or_, select
 from sqlmodel import Session
@@ -71,18 +72,24 @@ def search_observations(*, session: Session, q: ObservationQuery) -> tuple[list[
         conds.append(_OBS.c.effective >= q.date_from)
     if q.date_to is not None:
         conds.append(_OBS.c.effective < q.date_to)
+    return _served_page(session, _OBS, "Observation", conds, {"date": _OBS.c.effective}, q.sort, q.count, q.offset)
+
+
+def _served_page(session: Session, table: Any, rtype: str, conds: list[Any], sort_columns: dict[str, Any],
+                 sort: str, count: int, offset: int) -> tuple[list[bytes], int]:
+    """One page of current rows of ``table`` as served (joined to their fhir_version), and the total.
+
+    ``sort`` is a FHIR ``_sort`` value: a key of ``sort_columns`` or ``_lastUpdated``, ``-`` for descending.
+    """
     where = and_(*conds) if conds else True
-    total = session.execute(select(func.count()).select_from(_OBS).where(where)).scalar_one()
-    column = {"date": _OBS.c.effective, "_lastUpdated": _OBS.c.last_updated}[q.sort.lstrip("-")]
-    order = column.desc() if q.sort.startswith("-") else column.asc()
+    total = session.execute(select(func.count()).select_from(table).where(where)).scalar_one()
+    column = {**sort_columns, "_lastUpdated": table.c.last_updated}[sort.lstrip("-")]
+    order = column.desc() if sort.startswith("-") else column.asc()
     rows = session.execute(
         select(_V.c.resource)
-        .select_from(_OBS.join(_V, and_(_V.c.resource_type == "Observation", _V.c.id == _OBS.c.id,
-                                        _V.c.version_id == _OBS.c.version_id)))
-        .where(where)
-        .order_by(order, _OBS.c.id)
-        .limit(q.count)
-        .offset(q.offset)
+        .select_from(table.join(_V, and_(_V.c.resource_type == rtype, _V.c.id == table.c.id,
+                                         _V.c.version_id == table.c.version_id)))
+        .where(where).order_by(order, table.c.id).limit(count).offset(offset)
     )
     return [bytes(r[0]) for r in rows], int(total)
 
@@ -124,17 +131,7 @@ def search_flags(*, session: Session, q: FlagQuery) -> tuple[list[bytes], int]:
         conds.append(f.c.last_updated >= q.updated_from)
     if q.updated_to is not None:
         conds.append(f.c.last_updated < q.updated_to)
-    where = and_(*conds) if conds else True
-    total = session.execute(select(func.count()).select_from(f).where(where)).scalar_one()
-    column = {"date": f.c.period_start, "_lastUpdated": f.c.last_updated}[q.sort.lstrip("-")]
-    order = column.desc() if q.sort.startswith("-") else column.asc()
-    rows = session.execute(
-        select(_V.c.resource)
-        .select_from(f.join(_V, and_(_V.c.resource_type == "Flag", _V.c.id == f.c.id,
-                                     _V.c.version_id == f.c.version_id)))
-        .where(where).order_by(order, f.c.id).limit(q.count).offset(q.offset)
-    )
-    return [bytes(r[0]) for r in rows], int(total)
+    return _served_page(session, f, "Flag", conds, {"date": f.c.period_start}, q.sort, q.count, q.offset)
 
 
 def read_references(*, session: Session, references: Iterable[str]) -> list[bytes]:
