@@ -108,7 +108,7 @@ class Ingestor:
                requester: Requester | None = None) -> EntryResult:
         """A single create or conditional update; RequestRejected if it cannot be taken."""
         try:
-            prepared = self._prepare(entry, {}, {})
+            prepared = self._prepare(entry, {}, set())
             with self.db.session(write=True) as session:
                 results = self._store(session, [prepared], raw=raw, interaction=interaction)
                 self._audit(session, requester, interaction, results)

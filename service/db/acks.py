@@ -6,9 +6,9 @@ import uuid
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
-from typing import Any
+from typing import Any, cast
 
-from sqlalchemy import func, insert, select
+from sqlalchemy import CursorResult, func, insert, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlmodel import Session
@@ -72,4 +72,5 @@ def claim_escalation(*, session: Session, due: DueEscalation, now: datetime) -> 
     stmt = (pg_insert if dialect == "postgresql" else sqlite_insert)(_ESC).values(
         id=str(uuid.uuid4()), flag_id=due.flag_id, round=due.round, escalated_at=now
     ).on_conflict_do_nothing(index_elements=["flag_id", "round"])
-    return bool(session.execute(stmt).rowcount)
+    result = cast(CursorResult[Any], session.execute(stmt))
+    return bool(result.rowcount)

@@ -8,7 +8,7 @@ from dataclasses import dataclass
 from datetime import datetime
 
 import orjson
-from sqlalchemy import and_, func, insert, select
+from sqlalchemy import and_, func, insert, select, true
 from sqlmodel import Session
 
 from service.db.tables import AuditRecord
@@ -57,7 +57,7 @@ def search_audit(*, session: Session, q: AuditQuery) -> tuple[list[bytes], int]:
         conds.append(_A.c.patient_key == q.patient_key)
     if q.subtypes:
         conds.append(_A.c.subtype.in_(list(q.subtypes)))
-    where = and_(*conds) if conds else True
+    where = and_(true(), *conds)
     total = session.execute(select(func.count()).select_from(_A).where(where)).scalar_one()
     rows = session.execute(select(_A.c.resource).where(where).order_by(_A.c.recorded.desc(), _A.c.id)
                            .limit(q.count).offset(q.offset))

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import and_, func, or_, select
+from sqlalchemy import and_, func, or_, select, true
 from sqlmodel import Session
 
 from service.db.tables import FhirVersion, ObservationRecord, PatientAlias
@@ -81,7 +81,7 @@ def _served_page(session: Session, table: Any, rtype: str, conds: list[Any], sor
 
     ``sort`` is a FHIR ``_sort`` value: a key of ``sort_columns`` or ``_lastUpdated``, ``-`` for descending.
     """
-    where = and_(*conds) if conds else True
+    where = and_(true(), *conds)
     total = session.execute(select(func.count()).select_from(table).where(where)).scalar_one()
     column = {**sort_columns, "_lastUpdated": table.c.last_updated}[sort.lstrip("-")]
     order = column.desc() if sort.startswith("-") else column.asc()

@@ -49,7 +49,7 @@ def served_subscription(row: Any) -> dict[str, Any]:
     """The Subscription as we serve it: what was submitted, with our id, meta, status and error."""
     from service.fhir.render import fhir_instant
 
-    body = orjson.loads(row.resource)
+    body: dict[str, Any] = orjson.loads(row.resource)
     body["id"] = row.id
     body["meta"] = {"versionId": str(row.version_id), "lastUpdated": fhir_instant(row.last_updated)}
     body["status"] = row.status

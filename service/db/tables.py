@@ -47,8 +47,8 @@ class UTCDateTime(TypeDecorator[datetime]):
         return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
 
 
-def _utc(**kw: object) -> Any:
-    return Field(sa_column=Column(UTCDateTime(), **kw))  # type: ignore[call-overload]
+def _utc(**kw: Any) -> Any:
+    return Field(sa_column=Column(UTCDateTime(), **kw))
 
 
 class PatientAlias(SQLModel, table=True):
