@@ -56,9 +56,10 @@ def due_escalations(*, session: Session, priorities: Sequence[str], interval: ti
     acked = select(_ACK.c.flag_id).distinct()
     rows = session.execute(select(_FLAG.c.id, _FLAG.c.patient_key, _FLAG.c.version_id, _FLAG.c.raised_at)
                            .where(_FLAG.c.status == "active", _FLAG.c.priority.in_(list(priorities)),
-                                  _FLAG.c.id.not_in(acked)))
+                                  _FLAG.c.id.not_in(acked))).all()
     due: list[DueEscalation] = []
-    done = {(fid, rnd) for fid, rnd in session.execute(select(_ESC.c.flag_id, _ESC.c.round))}
+    done = {(fid, rnd) for fid, rnd in session.execute(
+        select(_ESC.c.flag_id, _ESC.c.round).where(_ESC.c.flag_id.in_([r.id for r in rows])))}
     for r in rows:
         rounds = int((now - r.raised_at) / interval)
         if rounds >= 1 and (r.id, rounds) not in done:
