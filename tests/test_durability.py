@@ -45,3 +45,26 @@ def test_acknowledged_results_survive_a_kill_and_restart(tmp_path: Path) -> None
     finally:
         proc.terminate()
         proc.wait(timeout=10)
+
+
+def test_two_workers_on_sqlite_store_every_result_once(tmp_path: Path) -> None:
+    from concurrent.futures import ThreadPoolExecutor
+
+    port = free_port()
+    auth = {**HEADERS, "Authorization": f"Bearer {token(tmp_path)}"}
+    proc = start_server(port, "--data-dir", str(tmp_path), "--workers", "2")
+    try:
+        def send(n: int) -> int:
+            body = bundle("transaction", *[observation(f"w{n}-{i}", value=130, patient=f"Patient/p{n % 5}")
+                                           for i in range(20)])
+            with httpx.Client(timeout=30) as c:
+                return c.post(f"http://127.0.0.1:{port}/fhir", content=dumps(body), headers=auth).status_code
+
+        with ThreadPoolExecutor(max_workers=8) as pool:
+            statuses = list(pool.map(send, range(40)))
+        found = httpx.get(f"http://127.0.0.1:{port}/fhir/Observation?_count=1", headers=auth, timeout=10).json()
+    finally:
+        proc.terminate()
+        proc.wait(timeout=10)
+    assert statuses == [200] * 40
+    assert found["total"] == 800
