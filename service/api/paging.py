@@ -14,7 +14,7 @@ from service.config import Settings
 from service.errors import Issue, RequestRejected
 from service.fhir.render import searchset
 
-__all__ = ["Page", "check_params", "page_bundle", "patient_alias", "split_tokens"]
+__all__ = ["Page", "check_params", "page_bundle", "patient_alias", "sort_param", "split_tokens"]
 
 
 class Page:
@@ -31,6 +31,14 @@ def check_params(params: QueryParams, allowed: set[str]) -> None:
     if unknown:
         raise RequestRejected([Issue("not-supported", f"search parameter(s) not supported: {', '.join(unknown)}; "
                                      f"supported: {', '.join(sorted(allowed))}")])
+
+
+def sort_param(params: QueryParams, default: str) -> str:
+    """``_sort``: date or _lastUpdated, ``-`` for descending."""
+    sort = params.get("_sort", default)
+    if sort.lstrip("-") not in ("date", "_lastUpdated"):
+        raise RequestRejected([Issue("not-supported", "_sort supports date, -date, _lastUpdated, -_lastUpdated")])
+    return sort
 
 
 def split_tokens(params: QueryParams, name: str) -> list[str]:

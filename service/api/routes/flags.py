@@ -11,7 +11,7 @@ from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.api.requester import RequesterDep
 from service.auth.deps import require
-from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.db.acks import acknowledge
 from service.db.audit import record_audit
 from service.db.flags import subjects
@@ -35,9 +35,7 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
     params = request.query_params
     check_params(params, _PARAMS)
     page = Page(params, ctx.settings)
-    sort = params.get("_sort", "-_lastUpdated")
-    if sort.lstrip("-") not in ("date", "_lastUpdated"):
-        raise RequestRejected([Issue("not-supported", "_sort supports date, -date, _lastUpdated, -_lastUpdated")])
+    sort = sort_param(params, "-_lastUpdated")
     includes = params.getlist("_include")
     if any(i != INCLUDE_EVIDENCE for i in includes):
         raise RequestRejected([Issue("not-supported", f"_include supports {INCLUDE_EVIDENCE} only")])

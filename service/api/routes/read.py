@@ -16,7 +16,7 @@ from service.auth.scopes import needed_scope
 from service.api.routes.flags import audit_flag_access
 from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
 from service.errors import Issue, NotFound, RequestRejected
-from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.fhir.audit_render import Requester
 from service.fhir.render import fhir_instant, status_line
 from service.fhir.search import date_bounds
@@ -81,9 +81,7 @@ async def search(request: Request, ctx: ContextDep) -> Response:
     params = request.query_params
     check_params(params, _OBS_PARAMS)
     page = Page(params, ctx.settings)
-    sort = params.get("_sort", "-date")
-    if sort.lstrip("-") not in ("date", "_lastUpdated"):
-        raise RequestRejected([Issue("not-supported", "_sort supports date, -date, _lastUpdated, -_lastUpdated")])
+    sort = sort_param(params, "-date")
     low, high = date_bounds(params.getlist("date"))
     codes = split_tokens(params, "code")
     alias = patient_alias(params)
