@@ -6,6 +6,7 @@ The server is the service's own app factory under uvicorn, configured only throu
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import queue
 import socket
@@ -17,8 +18,6 @@ from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-
-import importlib.util
 
 import httpx
 import orjson

@@ -13,7 +13,6 @@ from sqlmodel import Session
 
 from service.db.acks import claim_escalation, due_escalations
 from service.db.engine import Database
-from service.db.subscriptions import enqueue_events, flag_version
 from service.db.flags import (
     FlagWrite,
     open_flags,
@@ -21,6 +20,7 @@ from service.db.flags import (
     subjects,
     write_changes,
 )
+from service.db.subscriptions import enqueue_events, flag_version
 from service.db.timeline import load_timelines
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate

@@ -16,13 +16,13 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
-from service.auth.deps import Authenticator, install_auth
 from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
+from service.auth.deps import Authenticator, install_auth
 from service.clock import Clock, SystemClock
 from service.config import Settings
 from service.db.engine import Database
-from service.errors import Issue, NotFound, RequestRejected
 from service.dispatch import Dispatcher
+from service.errors import Issue, NotFound, RequestRejected
 from service.evaluation import Evaluator
 from service.ingest import Ingestor
 from service.jobs import start_scheduler

@@ -12,9 +12,9 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import create_engine, text
 
+from service.auth.tokens import mint
 from service.clock import FixedClock
 from service.config import Settings
-from service.auth.tokens import mint
 from service.main import build_context, create_app
 
 POSTGRES_URL = os.environ.get(

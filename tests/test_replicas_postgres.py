@@ -13,8 +13,8 @@ import orjson
 import pytest
 
 from tests.factories import HEADERS, bundle, dumps, observation
-from tests.test_delivery_loopback import Receiver, event_numbers
 from tests.servers import clean_env, free_port, start_server
+from tests.test_delivery_loopback import Receiver, event_numbers
 
 pytestmark = [pytest.mark.slow, pytest.mark.postgres]
 

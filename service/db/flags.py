@@ -13,7 +13,7 @@ from sqlmodel import Session
 
 from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
-from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag, WithdrawFlag
+from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag
 from service.fhir.flag_render import FlagView, render_flag
 
 __all__ = ["FlagWrite", "open_flags", "patients_to_recheck", "subjects", "write_changes"]

@@ -51,9 +51,9 @@ def test_capability_statement_advertises_both_subscription_topics(client: TestCl
 
 
 def test_served_subscription_validates(client: TestClient) -> None:
-    from tests.api.test_subscriptions import subscription
-
     import orjson
+
+    from tests.api.test_subscriptions import subscription
 
     created = client.post("/fhir/Subscription", content=orjson.dumps(subscription()), headers=HEADERS).json()
     valid(created)

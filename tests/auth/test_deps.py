@@ -12,7 +12,7 @@ import respx
 from cryptography.hazmat.primitives import serialization
 from fastapi.testclient import TestClient
 
-from service.auth.deps import AuthFailure, Authenticator, entry_allowed, entry_interactions, require
+from service.auth.deps import Authenticator, AuthFailure, entry_allowed, entry_interactions, require
 from service.auth.principal import Principal
 from service.auth.scopes import parse_scopes
 from service.auth.settings import AuthConfigError, AuthSettings

@@ -9,6 +9,7 @@ import pytest
 from service.domain.findings import Priority, Rule
 from service.domain.rules import evaluate
 from service.domain.values import Specimen
+from service.policy import load_policy
 from tests.domain.test_support import (
     MG_DL_PER_MMOL_L,
     at,
@@ -19,7 +20,6 @@ from tests.domain.test_support import (
     policy,
     timeline,
 )
-from service.policy import load_policy
 
 POLICY = load_policy()
 

@@ -8,8 +8,8 @@ from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
-from service.auth.deps import require
 from service.api.paging import Page, check_params, page_bundle, patient_alias, split_tokens
+from service.auth.deps import require
 from service.db.audit import AuditQuery, search_audit
 from service.db.reads import patient_key_for
 from service.fhir.search import date_bounds

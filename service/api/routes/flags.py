@@ -9,9 +9,9 @@ from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
+from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.api.requester import RequesterDep
 from service.auth.deps import require
-from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.db.acks import acknowledge
 from service.db.audit import record_audit
 from service.db.flags import subjects

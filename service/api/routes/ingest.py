@@ -9,9 +9,9 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
-from service.auth.deps import CallerDep, entry_allowed, require
-from service.api.requester import RequesterDep
 from service.api.fhir_io import fhir_response, prefer_return, read_json
+from service.api.requester import RequesterDep
+from service.auth.deps import CallerDep, entry_allowed, require
 from service.db.reads import read_version
 from service.errors import Issue, RequestRejected
 from service.fhir.render import operation_outcome, response_bundle

@@ -9,14 +9,14 @@ from fastapi.responses import Response
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
+from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.api.requester import RequesterDep
+from service.api.routes.flags import audit_flag_access
 from service.auth.deps import require
 from service.auth.failures import forbidden
 from service.auth.scopes import needed_scope
-from service.api.routes.flags import audit_flag_access
 from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
 from service.errors import Issue, NotFound, RequestRejected
-from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.fhir.audit_render import Requester
 from service.fhir.render import fhir_instant, status_line
 from service.fhir.search import date_bounds
