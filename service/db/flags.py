@@ -82,6 +82,14 @@ def write_changes(
             f = change.finding
             values = _finding_values(f, policy_hash)
             prior = change.flag if isinstance(change, UpdateFlag) else None
+            if prior is not None and prior.episode != f.episode:
+                # A re-keyed episode whose new key an older, closed flag already holds: that flag
+                # is reactivated and the open one closes, so the unique key is never duplicated.
+                clash = _existing(session, f)
+                if clash is not None and clash.id != prior.id:
+                    written += write_changes(session=session, changes=[CloseFlag(prior, now)],
+                                             subject_of=subject_of, policy_hash=policy_hash, now=now)
+                    prior = None
             row = _existing(session, f) if prior is None else session.execute(
                 select(_FLAG).where(_FLAG.c.id == prior.id)).first()
             if row is None:

@@ -101,14 +101,19 @@ def reconcile(
         flags.setdefault(flag.key, flag)
 
     changes: list[tuple[tuple[str, str, str, int], FlagChange]] = []
+    carried: set[str] = set()  # open flags that continue under a re-keyed episode
     for key, finding in by_key.items():
         current = flags.get(key)
         if current is None:
-            changes.append((_order(key, 0), CreateFlag(finding)))
-        elif _differs(current, finding):
+            current = _same_episode_rekeyed(finding, flags, by_key, carried)
+            if current is None:
+                changes.append((_order(key, 0), CreateFlag(finding)))
+                continue
+            carried.add(current.id)
+        if _differs(current, finding) or current.episode != finding.episode:
             changes.append((_order(key, 1), UpdateFlag(current, finding)))
     for flag in sorted(open_flags, key=lambda f: (f.key, f.id)):
-        if flag.key in by_key and flags[flag.key] is flag:
+        if (flag.key in by_key and flags[flag.key] is flag) or flag.id in carried:
             continue
         if _rested_only_on_withdrawn(flag, withdrawn):
             changes.append((_order(flag.key, 2), WithdrawFlag(flag, now)))
@@ -116,6 +121,28 @@ def reconcile(
             changes.append((_order(flag.key, 3), CloseFlag(flag, now)))
     changes.sort(key=lambda item: (item[0], _flag_id(item[1])))
     return [change for _, change in changes]
+
+
+def _same_episode_rekeyed(
+    finding: Finding,
+    flags: Mapping[tuple[str, Rule, str], OpenFlag],
+    by_key: Mapping[tuple[str, Rule, str], Finding],
+    carried: set[str],
+) -> OpenFlag | None:
+    """An open flag of the same patient and rule, with no finding of its own, that shares a result
+    with this finding: the same episode, whose onset moved because an earlier result arrived late.
+    It continues as a new version rather than closing and reopening (one page, not two)."""
+    cited = {_versionless(ref) for ref in finding.evidence}
+    for key, flag in sorted(flags.items(), key=lambda item: item[1].id):
+        if (key[0], key[1]) != (finding.patient, finding.rule) or key in by_key or flag.id in carried:
+            continue
+        if cited & {_versionless(ref) for ref in flag.evidence}:
+            return flag
+    return None
+
+
+def _versionless(reference: str) -> str:
+    return reference.split("/_history/")[0]
 
 
 def _order(key: tuple[str, Rule, str], kind: int) -> tuple[str, str, str, int]:

@@ -157,3 +157,17 @@ def test_flag_read_and_vread(client: TestClient) -> None:
 def test_flag_search_refuses_unknown_include(client: TestClient) -> None:
     r = client.get("/fhir/Flag?_include=Flag:subject")
     assert r.status_code == 400
+
+
+def test_late_earlier_result_continues_the_open_flag_instead_of_reopening(client: TestClient) -> None:
+    # A rise above 10 mmol/L in 24 h from a nadir below 130 (Spasovski 2014, clinical-reference §2);
+    # a late result that already showed the rise earlier moves the episode's start, not the flag.
+    send(client, observation("n1", value=114, effective="2026-03-01T20:00:00+00:00"),
+         observation("n2", value=126, effective="2026-03-02T10:00:00+00:00"))
+    (before,) = [f for f in flags(client) if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast"]
+    send(client, observation("late", value=125, effective="2026-03-02T08:00:00+00:00"))
+    rises = [f for f in flags(client, "&status=active,inactive")
+             if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast"]
+    assert [f["id"] for f in rises] == [before["id"]]
+    assert rises[0]["status"] == "active" and rises[0]["meta"]["versionId"] == "2"
+    assert rises[0]["period"]["start"] < before["period"]["start"]

@@ -99,6 +99,14 @@ def test_a_new_episode_closes_the_old_flag_and_creates_another() -> None:
     assert reconcile([new], [old], set(), NOW) == [CloseFlag(old, NOW), CreateFlag(new)]
 
 
+def test_an_episode_rekeyed_by_a_late_earlier_result_continues_the_same_flag() -> None:
+    # The open flag rests on result a; a late, earlier result b moves the onset back, and the new
+    # finding still cites a: the same episode, so one flag with a new version, not close + create.
+    old = open_flag(finding(onset=at(6), evidence=("Observation/a/_history/1",)))
+    moved = finding(onset=at(2), evidence=("Observation/a/_history/1", "Observation/b/_history/1"))
+    assert reconcile([moved], [old], set(), NOW) == [UpdateFlag(old, moved)]
+
+
 def test_a_duplicate_open_flag_for_one_episode_is_closed() -> None:
     f = finding()
     keep, duplicate = open_flag(f, "flag-1"), open_flag(f, "flag-2")
