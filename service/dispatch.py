@@ -93,17 +93,19 @@ class Dispatcher:
     def _drain(self, sid: str) -> int:
         sent = 0
         while True:
-            now = self.clock.now()
             with self.db.session() as session:
                 sub = session.execute(select(_S).where(_S.c.id == sid)).one()
-                rows = [r for r in pending_events(session=session, subscription_id=sid, limit=50)]
-                bodies = [(r, self._bundle(session, sub, r, now)) for r in rows]
-            if not bodies:
+                rows = pending_events(session=session, subscription_id=sid, limit=50)
+            if not rows:
                 return sent
-            for row, body in bodies:
+            spec = load_spec(sub)
+            for row in rows:
+                now = self.clock.now()
                 if row.next_attempt_at > now:
                     return sent  # the head row waits for its retry: nothing overtakes it
-                spec = load_spec(sub)
+                # Built just before sending, so the status it reports is the subscription's current one.
+                with self.db.session() as session:
+                    body = self._bundle(session, sub, row, now)
                 outcome = deliver(self.client, endpoint=spec.endpoint, headers=spec.headers,
                                   content_type=spec.payload_mime, body=orjson.dumps(body),
                                   timeout_s=float(spec.timeout_s or self.settings.delivery_timeout_seconds))

@@ -7,6 +7,8 @@ from collections.abc import Sequence
 from datetime import datetime
 from typing import Any
 
+import orjson
+
 from service.errors import Issue
 
 __all__ = [
@@ -52,8 +54,6 @@ def response_bundle(
     kind: str, results: Sequence[Any], *, representation: bool, now: datetime
 ) -> dict[str, Any]:
     """A ``batch-response`` or ``transaction-response`` Bundle, one entry per request entry in order."""
-    import orjson
-
     entries = []
     for r in results:
         response: dict[str, Any] = {"status": status_line(r.status)}
