@@ -5,6 +5,9 @@ active Flags (rule, episode, priority, sentence and the results they rest on). F
 closed on the way may differ with arrival order; the ones left standing may not.
 """
 
+# Sodium 118 or 115 mmol/L stands for a result at or below the critical low of 120 mmol/L
+# (RCPath G158 2017; Kost 1990: clinical-reference §1), so it raises sodium-critical-low.
+
 from __future__ import annotations
 
 import tempfile

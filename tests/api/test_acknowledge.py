@@ -1,5 +1,8 @@
 """$acknowledge: the team records that it has seen a Flag; it is audited and stops escalation."""
 
+# Sodium 118 or 115 mmol/L stands for a result at or below the critical low of 120 mmol/L
+# (RCPath G158 2017; Kost 1990: clinical-reference §1), so it raises sodium-critical-low.
+
 from __future__ import annotations
 
 from datetime import timedelta
