@@ -275,7 +275,7 @@ class Ingestor:
                 pending.append(_observation_pending(p, key_of[i]))
             elif p.insulin is not None:
                 slot[i] = len(pending)
-                pending.append(_insulin_pending(p, key_of[i]))
+                pending.append(_insulin_pending(p, key_of[i], now))
         request_id: list[int] = []
 
         def make_request_id() -> int:
@@ -364,13 +364,21 @@ def _observation_pending(p: _Prepared, patient_key: str) -> Pending:
             "issued": o.issued,
             "encounter": o.encounter,
             "replaces": o.replaces,
+            "quality": o.quality,
         },
     )
 
 
-def _insulin_pending(p: _Prepared, patient_key: str) -> Pending:
+# An administration in these states has ended; without an end time it ended when the news came.
+_ENDED = ("stopped", "completed", "on-hold")
+
+
+def _insulin_pending(p: _Prepared, patient_key: str, now: datetime) -> Pending:
     x = p.insulin
     assert x is not None
+    # A stopped or completed infusion sent without effectivePeriod.end would otherwise count as
+    # running forever; the time its status arrived is the latest it can have ended.
+    end = x.end if x.end is not None or x.status not in _ENDED else max(now, x.start)
     return Pending(
         resource_type="MedicationAdministration",
         identifier=x.identifier,
@@ -386,7 +394,7 @@ def _insulin_pending(p: _Prepared, patient_key: str) -> Pending:
             "medication": x.medication,
             "route": x.route,
             "start": x.start,
-            "end": x.end,
+            "end": end,
         },
     )
 

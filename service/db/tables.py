@@ -96,6 +96,7 @@ class ObservationRecord(SQLModel, table=True):
     issued: datetime | None = _utc(nullable=True)
     encounter: str | None = None
     replaces: str | None = None  # "Observation/<id>" or "id:<system>|<value>" of a result this one replaces
+    quality: str | None = None  # a sample-quality remark the lab sent (e.g. haemolysed)
     version_id: int = 1
     last_updated: datetime = _utc(nullable=False)
     content_hash: str

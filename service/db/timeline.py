@@ -60,7 +60,8 @@ def load_timelines(
             observation_id=r.id, version=r.version_id, patient=r.patient_key, analyte=Analyte(r.analyte),
             specimen=Specimen(r.specimen), loinc=r.loinc, status=ResultStatus(r.status),
             effective=r.effective, value=r.value, comparator=r.comparator, calculated=r.calculated,
-            issued=r.issued, encounter=r.encounter,
+            issued=r.issued, encounter=r.encounter, key=f"{r.identifier_system}|{r.identifier_value}",
+            quality=r.quality,
         ))
     exposures: dict[str, list[InsulinExposure]] = {k: [] for k in keys}
     for x in exposure_rows:
@@ -72,6 +73,8 @@ def load_timelines(
             source_id=x.id, version=x.version_id, patient=x.patient_key, start=x.start, end=x.end,
             route=x.route, status=x.status, medication=x.medication,
         ))
+    for k in keys:
+        results[k].sort(key=lambda r: r.order_key)
     return {
         k: Timeline(patient=k, window_start=start, window_end=end, results=tuple(results[k]),
                     exposures=tuple(exposures[k]), withdrawn=frozenset(withdrawn[k]))

@@ -93,6 +93,11 @@ def _entries() -> tuple[CatalogueEntry, ...]:
         E("59570-2", urea, wb, mol, "Urea nitrogen [Moles/volume] in Blood"),
         E("3091-6", urea, ser, mass, "Urea [Mass/volume] in Serum or Plasma"),
         E("22664-7", urea, ser, mol, "Urea [Moles/volume] in Serum or Plasma"),
+        # Calcium is context only: a very low calcium beside a very high potassium suggests K2EDTA
+        # contamination of the sample (Cornes MP et al, Ann Clin Biochem 2008;45:601-603).
+        # Code numbers from memory; both pass the check digit. Verify locally.
+        E("2000-8", Analyte.CALCIUM, ser, mol, "Calcium [Moles/volume] in Serum or Plasma"),
+        E("17861-6", Analyte.CALCIUM, ser, mass, "Calcium [Mass/volume] in Serum or Plasma"),
     )
 
 

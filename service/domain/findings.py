@@ -28,6 +28,7 @@ class Rule(StrEnum):
     SODIUM_RISE_TOO_FAST = "sodium-rise-too-fast"
     SODIUM_RISE_PROJECTED = "sodium-rise-projected"
     SODIUM_FALL_TOO_FAST = "sodium-fall-too-fast"
+    SODIUM_FALL_IN_CRISIS = "sodium-fall-in-crisis"
     OSMOLALITY_FALL_TOO_FAST = "osmolality-fall-too-fast"
     GLUCOSE_FALL_TOO_FAST = "glucose-fall-too-fast"
     HYPOKALEMIA_ON_INSULIN = "hypokalemia-on-insulin"

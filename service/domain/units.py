@@ -1,6 +1,6 @@
 """UCUM units each kind of LOINC term accepts, and exact conversion to the canonical unit.
 
-Canonical units: mmol/L for sodium, potassium, glucose and urea; mosm/kg for osmolality.
+Canonical units: mmol/L for sodium, potassium, glucose, urea and calcium; mosm/kg for osmolality.
 Factors come from molar masses (IUPAC conventional atomic weights C 12.011, H 1.008, N 14.007,
 O 15.999): glucose C6H12O6 180.156 g/mol, urea CH4N2O 60.056 g/mol, urea nitrogen 2 N = 28.014 g/mol.
 A test checks them against a general units library.
@@ -13,6 +13,7 @@ from service.domain.values import Analyte
 
 __all__ = [
     "GLUCOSE_MOLAR_MASS",
+    "CALCIUM_MOLAR_MASS",
     "UREA_MOLAR_MASS",
     "UREA_NITROGEN_MOLAR_MASS",
     "UnitNotAccepted",
@@ -23,6 +24,7 @@ __all__ = [
 GLUCOSE_MOLAR_MASS = 6 * 12.011 + 12 * 1.008 + 6 * 15.999  # 180.156 g/mol
 UREA_MOLAR_MASS = 12.011 + 4 * 1.008 + 2 * 14.007 + 15.999  # 60.056 g/mol
 UREA_NITROGEN_MOLAR_MASS = 2 * 14.007  # 28.014 g per mole of urea
+CALCIUM_MOLAR_MASS = 40.078  # g/mol, IUPAC conventional atomic weight of Ca
 
 UCUM_SYSTEM = "http://unitsofmeasure.org"
 
@@ -57,6 +59,8 @@ def _table(entry: CatalogueEntry) -> dict[str, float]:
         return {"mmol/L": 1.0}
     if entry.analyte is Analyte.GLUCOSE:
         return {"mg/dL": _mg_per_dl_to_mmol_per_l(GLUCOSE_MOLAR_MASS)}
+    if entry.analyte is Analyte.CALCIUM:
+        return {"mg/dL": _mg_per_dl_to_mmol_per_l(CALCIUM_MOLAR_MASS)}
     if entry.analyte is Analyte.UREA:
         mass = UREA_NITROGEN_MOLAR_MASS if entry.code in UREA_NITROGEN_CODES else UREA_MOLAR_MASS
         return {"mg/dL": _mg_per_dl_to_mmol_per_l(mass)}

@@ -14,6 +14,7 @@ __all__ = [
     "Analyte",
     "InsulinExposure",
     "LabResult",
+    "Method",
     "ResultStatus",
     "Specimen",
     "Timeline",
@@ -28,6 +29,7 @@ class Analyte(StrEnum):
     GLUCOSE = "glucose"
     OSMOLALITY = "osmolality"
     UREA = "urea"
+    CALCIUM = "calcium"  # context only: read by the specimen-artefact checks, never flagged itself
 
 
 class Specimen(StrEnum):
@@ -37,6 +39,19 @@ class Specimen(StrEnum):
     WHOLE_BLOOD = "whole-blood"  # arterial, venous, capillary or unspecified blood on an analyser
     POINT_OF_CARE = "point-of-care"  # meter or test strip; a flag on it asks for a lab confirmation
     URINE = "urine"
+
+
+class Method(StrEnum):
+    """How a sodium (or other electrolyte) was measured, as far as the code and specimen tell.
+
+    Whole-blood analysers (blood gas, point of care) measure by direct ISE; laboratory serum or
+    plasma analysers mostly by indirect ISE, which reads a few mmol/L lower for sodium when
+    protein is low (Story DA et al, Anesth Analg 2007;104:893-897). Rates compare like with like.
+    """
+
+    DIRECT = "direct"
+    INDIRECT = "indirect"
+    UNKNOWN = "unknown"  # e.g. LOINC 77139-4 "Serum, Plasma or Blood": either kind of analyser
 
 
 class ResultStatus(StrEnum):
@@ -73,11 +88,37 @@ class LabResult:
     calculated: bool = False  # e.g. osmolality by calculation rather than measured
     issued: datetime | None = None
     encounter: str | None = None
+    # The business identifier ("system|value"): stable across replays, unlike the server id, so it
+    # breaks ties between results drawn at the same instant.
+    key: str = ""
+    # What the lab said about the sample's quality, e.g. "haemolysed (specimen condition HEM)".
+    quality: str | None = None
 
     @property
     def reference(self) -> str:
         """Version-specific FHIR reference, the form evidence is cited in."""
         return f"Observation/{self.observation_id}/_history/{self.version}"
+
+    @property
+    def method(self) -> Method:
+        if self.loinc in _EITHER_METHOD:
+            return Method.UNKNOWN
+        if self.specimen in (Specimen.WHOLE_BLOOD, Specimen.POINT_OF_CARE):
+            return Method.DIRECT
+        return Method.INDIRECT
+
+    @property
+    def order_key(self) -> tuple[datetime, datetime, str, str, int]:
+        """The total order of results: collection time, then issued, then the stable identifier.
+
+        Two results drawn at the same instant always fall in the same order, whatever order they
+        arrived in and whatever ids the server gave them.
+        """
+        return (self.effective, self.issued or self.effective, self.key, self.observation_id, self.version)
+
+
+# LOINC terms whose specimen may be serum, plasma or blood: the analyser kind is not known.
+_EITHER_METHOD = frozenset({"77139-4", "77142-8", "74774-1", "77135-2"})
 
 
 @dataclass(frozen=True, slots=True)

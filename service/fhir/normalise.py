@@ -37,8 +37,22 @@ OBSERVATION_STATUSES = frozenset(s.value for s in ResultStatus)
 MEDADMIN_STATUSES = frozenset(
     {"in-progress", "not-done", "on-hold", "completed", "entered-in-error", "stopped", "unknown"}
 )
-# SNOMED CT route concepts (from memory; verify locally): 47625008 intravenous, 34206005 subcutaneous.
-_ROUTES = {"47625008": "intravenous", "34206005": "subcutaneous"}
+# Route codings that say where insulin went. SNOMED CT (from memory; verify locally): 47625008
+# "Intravenous route", 34206005 "Subcutaneous route". HL7 v2 table 0162 (Route of administration):
+# IV intravenous, SC subcutaneous, the codes interface engines carry over from v2 RXR-1.
+SNOMED_SYSTEM = "http://snomed.info/sct"
+V2_ROUTE_SYSTEM = "http://terminology.hl7.org/CodeSystem/v2-0162"
+_ROUTES = {
+    (SNOMED_SYSTEM, "47625008"): "intravenous",
+    (SNOMED_SYSTEM, "34206005"): "subcutaneous",
+    (V2_ROUTE_SYSTEM, "IV"): "intravenous",
+    (V2_ROUTE_SYSTEM, "SC"): "subcutaneous",
+    (None, "IV"): "intravenous",  # the v2 code sent without a system, as some engines do
+    (None, "SC"): "subcutaneous",
+}
+# HL7 v2 table 0493 (Specimen condition), code HEM "Hemolyzed" (from memory; verify locally).
+V2_SPECIMEN_CONDITION_SYSTEM = "http://terminology.hl7.org/CodeSystem/v2-0493"
+_HAEMOLYSIS_WORDS = ("haemoly", "hemoly")
 
 
 class Invalid(Exception):
@@ -63,6 +77,7 @@ class IncomingObservation:
     replaces: str | None
     resource: dict[str, Any]
     content_hash: str
+    quality: str | None = None  # a sample-quality remark that makes the result suspect
 
 
 @dataclass(frozen=True, slots=True)
@@ -185,7 +200,43 @@ def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root:
         replaces=_replaces(resource),
         resource=resource,
         content_hash=content_hash(resource),
+        quality=sample_quality(resource),
     )
+
+
+def sample_quality(resource: dict[str, Any]) -> str | None:
+    """What the lab said that makes the sample suspect, in a few words, or None.
+
+    Looks where labs put it: a contained Specimen's condition (HL7 v2 table 0493 HEM, or words), an
+    interpretation or note that says the sample was haemolysed, or a component reporting a
+    haemolysis index above zero.
+    """
+    contained = {f"#{c.get('id')}": c for c in resource.get("contained") or () if isinstance(c, dict)}
+    specimen = contained.get(str((resource.get("specimen") or {}).get("reference")))
+    for condition in (specimen or {}).get("condition") or ():
+        for coding in condition.get("coding") or ():
+            if coding.get("system") == V2_SPECIMEN_CONDITION_SYSTEM and coding.get("code") == "HEM":
+                return "haemolysed (specimen condition HEM)"
+        if _mentions_haemolysis(condition.get("text")):
+            return "haemolysed (specimen condition)"
+    for concept in resource.get("interpretation") or ():
+        texts = [concept.get("text"), *(c.get("display") for c in concept.get("coding") or ())]
+        if any(_mentions_haemolysis(t) for t in texts):
+            return "haemolysed (interpretation)"
+    for note in resource.get("note") or ():
+        if _mentions_haemolysis(note.get("text")):
+            return "haemolysed (note)"
+    for component in resource.get("component") or ():
+        code = component.get("code") or {}
+        texts = [code.get("text"), *(c.get("display") for c in code.get("coding") or ())]
+        value = (component.get("valueQuantity") or {}).get("value")
+        if any(_mentions_haemolysis(t) for t in texts) and isinstance(value, int | float) and value > 0:
+            return f"haemolysis index {value:g}"
+    return None
+
+
+def _mentions_haemolysis(text: Any) -> bool:
+    return isinstance(text, str) and any(word in text.lower() for word in _HAEMOLYSIS_WORDS)
 
 
 def _observation_time(resource: dict[str, Any], root: str) -> tuple[datetime | None, str]:
@@ -306,10 +357,15 @@ def normalise_insulin(
 
 
 def _route(dosage: dict[str, Any]) -> str | None:
+    """The route as a word: a coded route first; then a rate, which makes it an infusion whatever
+    the route text says (MedicationAdministration.dosage.rate[x]); then the route text."""
     route = dosage.get("route") or {}
     for coding in route.get("coding") or ():
-        if coding.get("code") in _ROUTES:
-            return _ROUTES[coding["code"]]
+        found = _ROUTES.get((coding.get("system"), coding.get("code")))
+        if found is not None:
+            return found
+    if dosage.get("rateQuantity") or dosage.get("rateRatio"):
+        return "intravenous"
     text = str(route.get("text") or "").lower()
     if "intraven" in text or text == "iv":
         return "intravenous"

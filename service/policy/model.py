@@ -9,16 +9,22 @@ from __future__ import annotations
 
 import hashlib
 import json
-from typing import Annotated
+import re
+from typing import Annotated, Any
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, model_validator
 
+from service.domain.catalogue import lookup
 from service.domain.findings import Priority
 from service.domain.insulin import InsulinCodes
+from service.domain.units import UnitNotAccepted, to_canonical
 from service.domain.values import Analyte, Specimen
 
 __all__ = [
     "CrisisRate",
+    "Artefacts",
+    "CrisisSodiumFall",
+    "DeltaCheck",
     "Derived",
     "EscalationPolicy",
     "InsulinMedication",
@@ -31,9 +37,55 @@ __all__ = [
     "policy_hash",
 ]
 
+# A LOINC term per analyte and unit family, used only to convert a threshold written in the unit of
+# its source ("250 mg/dL") with exactly the factor a result in that unit is converted with, so a
+# result of 250 mg/dL compares equal to a threshold of "250 mg/dL".
+_THRESHOLD_TERMS = {
+    Analyte.SODIUM: ("2951-2",),
+    Analyte.POTASSIUM: ("2823-3",),
+    Analyte.GLUCOSE: ("14749-6", "2345-7"),
+    Analyte.OSMOLALITY: ("2692-2",),
+    Analyte.CALCIUM: ("2000-8", "17861-6"),
+    Analyte.UREA: ("22664-7", "3091-6"),
+}
+_WITH_UNIT = re.compile(r"^\s*([0-9]+(?:\.[0-9]+)?)\s+(\S+)\s*$")
+
+
+def in_canonical_unit(analyte: Analyte, value: Any) -> Any:
+    """A threshold as a number in the analyte's canonical unit; "250 mg/dL" is converted exactly.
+
+    A plain number is taken to be in the canonical unit already. Anything else is handed on for
+    pydantic to refuse with its own message.
+    """
+    if not isinstance(value, str):
+        return value
+    match = _WITH_UNIT.match(value)
+    if match is None:
+        raise ValueError(f"write a threshold as a number or as 'number unit', e.g. '250 mg/dL' (got {value!r})")
+    number, unit = float(match.group(1)), match.group(2)
+    accepted: list[str] = []
+    for code in _THRESHOLD_TERMS[analyte]:
+        entry = lookup(code)
+        assert entry is not None
+        try:
+            return to_canonical(entry, number, code=unit, text=None)
+        except UnitNotAccepted as exc:
+            accepted += exc.accepted
+    raise ValueError(f"unit {unit!r} is not a UCUM unit for {analyte}; use one of {', '.join(accepted)}")
+
+
+def _threshold(analyte: Analyte) -> BeforeValidator:
+    return BeforeValidator(lambda v: in_canonical_unit(analyte, v))
+
+
 Positive = Annotated[float, Field(gt=0)]
 Hours = Annotated[float, Field(gt=0)]
 Minutes = Annotated[float, Field(ge=0)]
+GlucoseThreshold = Annotated[float, _threshold(Analyte.GLUCOSE), Field(gt=0)]
+SodiumThreshold = Annotated[float, _threshold(Analyte.SODIUM), Field(gt=0)]
+PotassiumThreshold = Annotated[float, _threshold(Analyte.POTASSIUM), Field(gt=0)]
+OsmolalityThreshold = Annotated[float, _threshold(Analyte.OSMOLALITY), Field(gt=0)]
+CalciumThreshold = Annotated[float, _threshold(Analyte.CALCIUM), Field(gt=0)]
 BloodSpecimens = Annotated[tuple[Specimen, ...], Field(min_length=1)]
 
 
@@ -57,11 +109,21 @@ class LevelLimit(_Section):
     low: Positive
     high: Positive
 
+    @model_validator(mode="before")
+    @classmethod
+    def _units(cls, data: Any) -> Any:
+        # Limits may be written in the unit of their source ("45 mg/dL"); the analyte says how
+        # to convert them.
+        if isinstance(data, dict) and data.get("analyte") in set(Analyte):
+            analyte = Analyte(data["analyte"])
+            return {**data, **{k: in_canonical_unit(analyte, data[k]) for k in ("low", "high") if k in data}}
+        return data
+
     @model_validator(mode="after")
     def _check(self) -> LevelLimit:
         _no_urine(self.specimens)
-        if self.analyte is Analyte.UREA:
-            raise ValueError("urea has no dangerous-level rule")
+        if self.analyte in (Analyte.UREA, Analyte.CALCIUM):
+            raise ValueError(f"{self.analyte} has no dangerous-level rule")
         if self.low >= self.high:
             raise ValueError("low must be below high")
         return self
@@ -69,17 +131,23 @@ class LevelLimit(_Section):
 
 class SodiumRise(_Section):
     limit_24h: Positive
+    limit_24h_after_first_day: Positive  # the limit for each 24 h after the first; = limit_24h to keep one limit
     limit_24h_high_risk: Positive
     limit_48h: Positive
-    applies_below: Positive
-    high_risk_nadir_at_or_below: Positive
-    high_risk_potassium_below: Positive
+    applies_below: SodiumThreshold
+    stand_down_measured_osmolality_at_least: OsmolalityThreshold
+    high_risk_nadir_at_or_below: SodiumThreshold
+    high_risk_potassium_below: PotassiumThreshold
     projection_min_hours: Hours
+    projection_min_results_after_nadir: Annotated[int, Field(ge=1)]
+    projection_min_change: Positive
 
     @model_validator(mode="after")
     def _check(self) -> SodiumRise:
         if self.limit_24h_high_risk > self.limit_24h:
             raise ValueError("limit_24h_high_risk must not exceed limit_24h")
+        if self.limit_24h_after_first_day > self.limit_24h:
+            raise ValueError("limit_24h_after_first_day must not exceed limit_24h")
         if self.limit_48h < self.limit_24h:
             raise ValueError("limit_48h must not be below limit_24h")
         return self
@@ -89,13 +157,24 @@ class SodiumFall(_Section):
     limit_24h: Positive
     max_rate_per_hour: Positive
     rate_min_hours: Hours
-    applies_above: Positive
+    applies_above: SodiumThreshold
+
+
+class CrisisSodiumFall(_Section):
+    """Glucose-corrected sodium falling while the data show a hyperglycaemic crisis."""
+
+    limit_24h: Positive
+    priority: Priority
 
 
 class SodiumPolicy(_Section):
     specimens: BloodSpecimens
+    # Added to a limit when a change is measured between a direct (whole-blood) and an indirect
+    # (laboratory) result, so method bias alone cannot make a rate.
+    method_bias_allowance: Annotated[float, Field(ge=0)]
     rise: SodiumRise
     fall: SodiumFall
+    crisis_fall: CrisisSodiumFall
 
     @model_validator(mode="after")
     def _check(self) -> SodiumPolicy:
@@ -107,7 +186,11 @@ class CrisisRate(_Section):
     osmolality_max_fall_per_hour: Positive
     glucose_max_fall_per_hour: Positive
     min_hours: Hours
-    starting_glucose_at_least: Positive
+    starting_glucose_at_least: GlucoseThreshold
+    # The data show a crisis when glucose is at or above the threshold above and either osmolality
+    # criterion holds, or IV insulin is running.
+    calculated_effective_osmolality_at_least: OsmolalityThreshold
+    measured_osmolality_at_least: OsmolalityThreshold
     glucose_specimens: BloodSpecimens
 
     @model_validator(mode="after")
@@ -117,10 +200,15 @@ class CrisisRate(_Section):
 
 
 class InsulinPotassium(_Section):
-    below: Positive
-    escalate_below: Positive
+    hold_below: PotassiumThreshold
+    below: PotassiumThreshold
+    escalate_below: PotassiumThreshold
     routes: Annotated[tuple[str, ...], Field(min_length=1)]
     iv_tail_minutes: Minutes
+    # A subcutaneous dose counts for this long after it was given, when "subcutaneous" is among
+    # the routes and its medication starts with one of these "system|code" prefixes.
+    subcutaneous_dose_hours: Hours
+    subcutaneous_medications: tuple[Annotated[str, Field(min_length=1)], ...]
     recheck_hours: Hours
     persistence_min_gap_minutes: Minutes
     specimens: BloodSpecimens
@@ -130,13 +218,34 @@ class InsulinPotassium(_Section):
         _no_urine(self.specimens)
         if self.escalate_below > self.below:
             raise ValueError("escalate_below must not exceed below")
+        if self.hold_below > self.below:
+            raise ValueError("hold_below must not exceed below")
         return self
 
 
 class Derived(_Section):
     sodium_glucose_factor: Positive
     pairing_minutes: Minutes
-    show_corrected_sodium_from_glucose: Positive
+    # Rules judge sodium corrected for glucose (and sentences show it) when the paired glucose is
+    # at least this.
+    corrected_sodium_from_glucose: GlucoseThreshold
+
+
+class DeltaCheck(_Section):
+    """A result that moves more than ``change`` (canonical unit) from its neighbour is checked for
+    being a specimen artefact; ``toward`` is the composition an infusion fluid would pull it to."""
+
+    change: Positive
+    toward: float | None = None
+
+
+class Artefacts(_Section):
+    """When a result is suspected of being a specimen artefact rather than the patient."""
+
+    delta: dict[Analyte, DeltaCheck]
+    spike_within_hours: Hours
+    edta_potassium_at_least: PotassiumThreshold
+    edta_calcium_at_most: CalciumThreshold
 
 
 class EscalationPolicy(_Section):
@@ -164,6 +273,7 @@ class Policy(_Section):
     levels: Annotated[tuple[LevelLimit, ...], Field(min_length=1)]
     sodium: SodiumPolicy
     crisis: CrisisRate
+    artefacts: Artefacts
     insulin_potassium: InsulinPotassium
     insulin: InsulinMedication
     escalation: EscalationPolicy

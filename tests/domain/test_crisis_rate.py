@@ -1,9 +1,13 @@
-"""Hyperglycaemic crisis: osmolality and glucose falling too fast.
+"""Hyperglycaemic crisis: osmolality and glucose falling too fast, judged only during a crisis.
 
-Limits: effective osmolality fall 8 mOsm/kg/h and glucose fall 5 mmol/L/h (Mustafa 2023 JBDS via
-clinical-reference §5; also Scott 2015 JBDS position statement "3-8 mOsm/kg/h"), over at least 2 h
-(common practice, no source), when the starting glucose is >=13.9 mmol/L (250 mg/dL; Kitabchi
-2009, from memory). Paediatric profile 3 mOsm/kg/h (Kitabchi 2009, from memory).
+Limits: effective osmolality fall 8 mOsm/kg/h and glucose fall 5 mmol/L/h (Mustafa OG et al (JBDS),
+Diabet Med 2023;40:e15005; also the JBDS HHS position statement, Scott AR et al, Diabet Med
+2015;32:714-724, "3-8 mOsm/kg/h" [from memory]), over at least 2 h (common practice, no source),
+when the starting glucose is >= 250 mg/dL (Kitabchi AE et al, Diabetes Care 2009;32:1335-1343, from
+memory). Paediatric profile 3 mOsm/kg/h (Kitabchi 2009, from memory). A crisis needs, besides that
+glucose, a calculated effective osmolality >= 300 or a measured osmolality >= 320 mOsm/kg (HHS
+criteria of Umpierrez GE et al, Diabetes Care 2024;47:1257-1275, seen in a summary of the report)
+or an insulin infusion running. Most tests below run an infusion so the gate is open.
 """
 
 from __future__ import annotations
@@ -14,14 +18,15 @@ from service.domain.findings import Priority, Rule
 from service.domain.rules import evaluate
 from service.domain.values import Specimen
 from service.policy import load_policy
-from tests.domain.test_support import at, glu, na, osm, timeline
+from tests.domain.test_support import MG_DL_PER_MMOL_L, at, glu, insulin, na, osm, timeline
 
 ADULT = load_policy()
 PAEDIATRIC = load_policy(profile="paediatric")
+DRIP = insulin(-1)  # an IV insulin infusion running from before the first result
 
 
-def findings(*results, p=ADULT):  # type: ignore[no-untyped-def]
-    return {f.rule: f for f in evaluate(timeline(list(results)), p, at(100))}
+def findings(*results, p=ADULT, exposures=(DRIP,)):  # type: ignore[no-untyped-def]
+    return {f.rule: f for f in evaluate(timeline(list(results), list(exposures)), p, at(100))}
 
 
 def test_measured_osmolality_360_to_340_in_2h_is_falling_too_fast() -> None:
@@ -61,9 +66,17 @@ def test_a_fall_over_exactly_2h_is_measured() -> None:
     assert Rule.GLUCOSE_FALL_TOO_FAST in findings(glu(40, 0), glu(28, 2.0))
 
 
-@pytest.mark.parametrize(("start", "flagged"), [(13.9, True), (13.8, False)])
-def test_glucose_rule_applies_only_from_a_starting_glucose_of_13_9(start: float, flagged: bool) -> None:
-    # Kitabchi 2009 (from memory): 250 mg/dL = 13.9 mmol/L, inclusive
+@pytest.mark.parametrize(
+    ("start", "flagged"),
+    [
+        (250 / MG_DL_PER_MMOL_L, True),  # exactly 250 mg/dL (13.877 mmol/L): inside, as 13.9 is
+        (13.9, True),
+        (249.9 / MG_DL_PER_MMOL_L, False),
+        (13.8, False),
+    ],
+)
+def test_glucose_rule_applies_from_a_starting_glucose_of_250_mg_dl(start: float, flagged: bool) -> None:
+    # Kitabchi 2009 (from memory): 250 mg/dL, inclusive; the policy writes it in mg/dL and compares exactly
     assert (Rule.GLUCOSE_FALL_TOO_FAST in findings(glu(start, 0), glu(start - 10.1, 2))) is flagged
 
 
@@ -128,3 +141,36 @@ def test_rate_is_measured_over_the_latest_span_of_at_least_2h() -> None:
     fall = findings(glu(40, 0), glu(39, 1), glu(27, 3))[Rule.GLUCOSE_FALL_TOO_FAST]
     assert fall.numbers["start"] == 39
     assert fall.numbers["hours"] == 2
+
+
+def test_a_ward_patients_high_glucose_falling_to_normal_is_not_a_crisis() -> None:
+    # Glucose 16 -> 5 in 2 h (5.5/h > 5) with sodium 138: effective osmolality 2*138 + 16 = 292 < 300,
+    # no insulin infusion: the crisis-rate rules stand aside.
+    results = (glu(16, 0), na(138, 0), glu(5, 2), na(138, 2))
+    assert Rule.GLUCOSE_FALL_TOO_FAST not in findings(*results, exposures=())
+
+
+@pytest.mark.parametrize(("sodium", "flagged"), [(130.0, True), (129.95, False)])
+def test_a_calculated_effective_osmolality_of_300_opens_the_crisis_gate(sodium: float, flagged: bool) -> None:
+    # 2*130 + 40 = 300 mOsm/kg: at the HHS threshold (Umpierrez 2024), inclusive; 299.9 is not
+    results = (glu(40, 0), na(sodium, 0), glu(28, 2))
+    assert (Rule.GLUCOSE_FALL_TOO_FAST in findings(*results, exposures=())) is flagged
+
+
+@pytest.mark.parametrize(("measured", "flagged"), [(320.0, True), (319.9, False)])
+def test_a_measured_osmolality_of_320_opens_the_crisis_gate(measured: float, flagged: bool) -> None:
+    # Umpierrez 2024 HHS: total (measured) serum osmolality 320 mOsm/kg
+    results = (glu(40, 0), osm(measured, 0), glu(28, 2))
+    assert (Rule.GLUCOSE_FALL_TOO_FAST in findings(*results, exposures=())) is flagged
+
+
+def test_an_insulin_infusion_with_a_high_glucose_opens_the_crisis_gate() -> None:
+    results = (glu(40, 0), glu(28, 2))
+    assert Rule.GLUCOSE_FALL_TOO_FAST in findings(*results, exposures=(insulin(-1),))
+    assert Rule.GLUCOSE_FALL_TOO_FAST not in findings(*results, exposures=())
+
+
+def test_an_infusion_started_after_the_span_began_does_not_open_the_gate() -> None:
+    # The crisis is judged where the fall is measured from; insulin from 1 h is not running at 0 h.
+    results = (glu(40, 0), glu(28, 2))
+    assert Rule.GLUCOSE_FALL_TOO_FAST not in findings(*results, exposures=(insulin(1),))

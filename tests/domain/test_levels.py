@@ -181,7 +181,7 @@ def test_a_site_limit_changes_the_verdict() -> None:
 
 def test_policy_helper_can_override_a_section() -> None:
     # Guards the test builder itself: an override must reach the rules.
-    p = policy(derived={"show_corrected_sodium_from_glucose": 40.0})
+    p = policy(derived={"corrected_sodium_from_glucose": 40.0})
     findings = evaluate(timeline([na(118, 0), glu(33.3, 0)]), p, at(1))
     [low] = [f for f in findings if f.rule is Rule.SODIUM_CRITICAL_LOW]
     assert "corrected" not in low.sentence

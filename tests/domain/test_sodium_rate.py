@@ -130,24 +130,45 @@ def test_censored_sodium_is_no_nadir() -> None:
 
 
 def test_six_in_the_first_six_hours_is_projected_past_the_24h_limit() -> None:
-    # brief example; rule of sixes (Sterns 2010, from memory): 6 in 6 h = 1 mmol/L/h -> 24 in 24 h
-    projected = findings(na(112, 0), na(118, 6))[Rule.SODIUM_RISE_PROJECTED]
+    # rule of sixes (Sterns RH et al, Am J Kidney Dis 2010;56:774-779, from memory): 6 in 6 h is
+    # 1 mmol/L/h, a pace that gives a rise of 24 in 24 h
+    projected = findings(na(112, 0), na(115, 3), na(118, 6))[Rule.SODIUM_RISE_PROJECTED]
     assert projected.numbers["rate_per_hour"] == pytest.approx(1.0)
-    assert projected.numbers["projected_24h"] == pytest.approx(24.0)
+    assert projected.numbers["projected_rise_24h"] == pytest.approx(24.0)
     assert projected.priority is Priority.MEDIUM
-    assert "would reach 24 mmol/L in 24 h" in projected.sentence
+    assert "at this pace the rise over 24 h would be 24 mmol/L" in projected.sentence
+
+
+def test_a_projection_is_never_worded_as_a_sodium_level() -> None:
+    projected = findings(na(112, 0), na(115, 3), na(118, 6))[Rule.SODIUM_RISE_PROJECTED]
+    assert "reach" not in projected.sentence
+
+
+def test_one_result_after_the_nadir_is_no_trend_to_project() -> None:
+    # common practice, no source: at least two results after the nadir
+    assert Rule.SODIUM_RISE_PROJECTED not in findings(na(112, 0), na(118, 6))
+
+
+@pytest.mark.parametrize(("rise", "projected"), [(4.0, False), (4.1, True)])
+def test_a_projection_needs_a_rise_beyond_the_reference_change_value(rise: float, projected: bool) -> None:
+    # RCV95 = 1.96 x sqrt(2) x sqrt(1.0^2 + 0.6^2) % = 3.2 % of 130 = 4.2 mmol/L (Fraser & Harris 1989,
+    # CVs from memory), policy rounds to 4: a rise of 4 within 4 h is within noise, 4.1 is not
+    results = (na(112, 0), na(112 + rise / 2, 2), na(112 + rise, 4))
+    assert (Rule.SODIUM_RISE_PROJECTED in findings(*results)) is projected
 
 
 @pytest.mark.parametrize(("span", "projected"), [(3.9, False), (4.0, True)])
 def test_projection_needs_at_least_4_hours_since_the_nadir(span: float, projected: bool) -> None:
     # common practice, no source: minimum span of 4 h, inclusive
-    assert (Rule.SODIUM_RISE_PROJECTED in findings(na(112, 0), na(116, span))) is projected
+    results = (na(112, 0), na(114, span / 2), na(116.5, span))
+    assert (Rule.SODIUM_RISE_PROJECTED in findings(*results)) is projected
 
 
-@pytest.mark.parametrize(("rise", "projected"), [(2.5, False), (2.6, True)])
-def test_projection_must_exceed_the_limit_strictly(rise: float, projected: bool) -> None:
-    # 2.5 in 6 h -> exactly 10 in 24 h: not above the limit
-    assert (Rule.SODIUM_RISE_PROJECTED in findings(na(112, 0), na(112 + rise, 6))) is projected
+@pytest.mark.parametrize(("span", "projected"), [(12.0, False), (11.9, True)])
+def test_projection_must_exceed_the_limit_strictly(span: float, projected: bool) -> None:
+    # 5 in 12 h -> exactly 10 in 24 h: not above the limit of 10 (Spasovski 2014, from memory)
+    results = (na(112, 0), na(114, span / 2), na(117, span))
+    assert (Rule.SODIUM_RISE_PROJECTED in findings(*results)) is projected
 
 
 def test_projection_gives_way_once_the_limit_is_crossed() -> None:

@@ -81,7 +81,10 @@ def test_paediatric_profile_overrides_only_what_it_names() -> None:
     # Kitabchi 2009 via clinical-reference §5 (from memory): <=3 mOsm/kg/h
     assert child.crisis.osmolality_max_fall_per_hour == 3.0
     assert child.crisis.glucose_max_fall_per_hour == adult.crisis.glucose_max_fall_per_hour
-    assert child.sodium == adult.sodium
+    assert child.sodium.rise == adult.sodium.rise
+    assert child.sodium.fall == adult.sodium.fall
+    # ISPAD 2022 (from memory): a falling corrected sodium in a child's DKA is a warning sign
+    assert child.sodium.crisis_fall.limit_24h < adult.sodium.crisis_fall.limit_24h
 
 
 def test_an_unknown_key_is_refused_with_its_path(tmp_path: Path) -> None:
@@ -116,22 +119,22 @@ def test_a_level_with_low_above_high_is_refused_with_its_path(tmp_path: Path) ->
 
 def test_urine_is_refused_as_a_rule_specimen(tmp_path: Path) -> None:
     text = default_text().replace(
-        'specimens = ["serum-plasma", "whole-blood"]\n\n[sodium.rise]',
-        'specimens = ["serum-plasma", "urine"]\n\n[sodium.rise]',
+        'specimens = ["serum-plasma", "whole-blood"]\n# Whole-blood',
+        'specimens = ["serum-plasma", "urine"]\n# Whole-blood',
     )
     with pytest.raises(PolicyError, match=r"^sodium: urine results never feed these rules"):
         load_policy(write(tmp_path, text))
 
 
 def test_a_bad_value_in_a_profile_names_the_profile(tmp_path: Path) -> None:
-    text = default_text().replace("osmolality_max_fall_per_hour = 3.0", "osmolality_max_fall_per_hour = -3.0")
+    text = default_text().replace("osmolality_max_fall_per_hour = 3.0", "osmolality_max_fall_per_hour = -3.0", 1)
     with pytest.raises(PolicyError, match=r"profiles\.paediatric\.crisis\.osmolality_max_fall_per_hour: must be > 0"):
         load_policy(write(tmp_path, text))
 
 
 def test_an_unknown_profile_is_refused() -> None:
-    with pytest.raises(PolicyError, match=r"profile: unknown profile 'neonatal'"):
-        load_policy(profile="neonatal")
+    with pytest.raises(PolicyError, match=r"profile: unknown profile 'geriatric'"):
+        load_policy(profile="geriatric")
 
 
 def test_invalid_toml_is_refused(tmp_path: Path) -> None:

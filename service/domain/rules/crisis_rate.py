@@ -2,8 +2,11 @@
 
 A rate is measured from the latest point of a series back to the latest point of the same kind
 drawn at least ``min_hours`` before it (inclusive), and flagged when strictly faster than the
-limit. It applies only when the glucose at the start of that span proves at least
-``starting_glucose_at_least`` (13.9 mmol/L, 250 mg/dL; inclusive, a censored ">33.3" counts).
+limit. It applies only while the data show a hyperglycaemic crisis at the start of that span
+(``service.domain.crisis``: glucose at or above ``starting_glucose_at_least``, 250 mg/dL, compared
+exactly in the unit it is written in, a censored ">33.3" counting; and a high effective osmolality
+or an insulin infusion running). A ward patient's moderately high glucose falling to normal, with
+normal tonicity and no infusion, is not judged by these rules. Suspect results never reach them.
 
 Effective osmolality at a point is the measured serum osmolality when there is one, else 2·Na +
 glucose from a sodium and a glucose drawn within the pairing window. A rate is never measured
@@ -17,10 +20,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
+from service.domain.crisis import crisis_at
 from service.domain.derived import corrected_sodium, effective_osmolality, pair_nearest
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.rules.series import LAB_BLOOD, at_least, exact, fmt, hours, trailing_run_start
-from service.domain.values import Analyte, LabResult, Specimen
+from service.domain.values import Analyte, InsulinExposure, LabResult, Specimen
 from service.policy.model import Policy
 
 __all__ = ["evaluate_crisis_rate"]
@@ -35,7 +39,9 @@ class _Point:
     encounter: str | None
 
 
-def evaluate_crisis_rate(results: Sequence[LabResult], policy: Policy, patient: str) -> list[Finding]:
+def evaluate_crisis_rate(
+    results: Sequence[LabResult], exposures: Sequence[InsulinExposure], policy: Policy, patient: str
+) -> list[Finding]:
     """Osmolality-fall and glucose-fall findings for one patient's time-ordered, urine-free results."""
     window = timedelta(minutes=policy.derived.pairing_minutes)
     glucose_all = [
@@ -70,7 +76,8 @@ def evaluate_crisis_rate(results: Sequence[LabResult], policy: Policy, patient: 
         (Rule.GLUCOSE_FALL_TOO_FAST, [glucose], policy.crisis.glucose_max_fall_per_hour, "mmol/L", "Glucose"),
     ):
         for points in series:
-            finding = _fall(rule, points, limit, unit, name, glucose_all, sodium, policy, patient)
+            finding = _fall(rule, points, limit, unit, name, glucose_all, sodium, results, exposures, policy,
+                            patient)
             if finding is not None:
                 findings.append(finding)
                 break
@@ -124,6 +131,8 @@ def _fall(
     name: str,
     glucose: Sequence[LabResult],
     sodium: Sequence[LabResult],
+    results: Sequence[LabResult],
+    exposures: Sequence[InsulinExposure],
     policy: Policy,
     patient: str,
 ) -> Finding | None:
@@ -139,7 +148,9 @@ def _fall(
             return None
         span = hours(start.effective, points[i].effective)
         per_hour = (start.value - points[i].value) / span
-        return (start, span, per_hour) if per_hour > limit else None
+        if per_hour <= limit:
+            return None
+        return (start, span, per_hour) if crisis_at(start.effective, results, exposures, policy) else None
 
     begin = trailing_run_start(len(points), lambda i: rate(i) is not None)
     if begin is None:
@@ -195,6 +206,6 @@ def _corrected_sodium_now(
         na = pair_nearest(glu or anchor, sodium, window)
     if glu is None or na is None or glu.value is None or na.value is None:
         return None
-    if glu.value < policy.derived.show_corrected_sodium_from_glucose:
+    if glu.value < policy.derived.corrected_sodium_from_glucose:
         return None
     return corrected_sodium(na.value, glu.value, policy.derived.sodium_glucose_factor), na, glu

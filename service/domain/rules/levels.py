@@ -81,10 +81,20 @@ def _side(
         for r, limit in watched
         if (verdict := judge(r, limit.low if side == "low" else limit.high)) is not Verdict.UNKNOWN
     ]
-    start = trailing_run_start(len(informative), lambda i: informative[i][2] is Verdict.DANGER)
+    # Results drawn at the same instant (one specimen run twice, a gas and a lab sample stamped
+    # alike) are one moment: it is dangerous if any of them is, whatever order they arrived in.
+    instants: list[list[tuple[LabResult, LevelLimit, Verdict]]] = []
+    for item in informative:
+        if instants and instants[-1][0][0].effective == item[0].effective:
+            instants[-1].append(item)
+        else:
+            instants.append([item])
+    start = trailing_run_start(len(instants), lambda i: any(v is Verdict.DANGER for *_, v in instants[i]))
     if start is None:
         return None
-    result, limit, _ = informative[-1]
+    dangerous = [item for item in instants[-1] if item[2] is Verdict.DANGER]
+    # Of several dangerous results at the latest instant, the most extreme is shown.
+    result, limit, _ = (min if side == "low" else max)(dangerous, key=lambda item: item[0].value or 0.0)
     bound = limit.low if side == "low" else limit.high
     unit = UNITS[analyte]
     shown = f"{result.comparator or ''}{fmt(result.value or 0.0)}"
@@ -101,7 +111,7 @@ def _side(
             timedelta(minutes=policy.derived.pairing_minutes),
         )
         if glucose is not None and glucose.value is not None:
-            if glucose.value >= policy.derived.show_corrected_sodium_from_glucose:
+            if glucose.value >= policy.derived.corrected_sodium_from_glucose:
                 corrected = corrected_sodium(
                     result.value, glucose.value, policy.derived.sodium_glucose_factor
                 )
@@ -120,6 +130,6 @@ def _side(
         evidence=evidence,
         numbers=numbers,
         sentence=sentence + ".",
-        onset=informative[start][0].effective,
+        onset=instants[start][0][0].effective,
         encounter=result.encounter,
     )

@@ -36,6 +36,7 @@ UNITS = {
     Analyte.POTASSIUM: "mmol/L",
     Analyte.GLUCOSE: "mmol/L",
     Analyte.UREA: "mmol/L",
+    Analyte.CALCIUM: "mmol/L",
     Analyte.OSMOLALITY: "mOsm/kg",
 }
 

@@ -1,50 +1,71 @@
-"""Sodium corrected too fast: rising in hyponatraemia, falling in hypernatraemia.
+"""Sodium corrected too fast: rising in hyponatraemia, falling in hypernatraemia or in a
+hyperglycaemic crisis.
 
-Every rise or fall is measured at the latest exact sodium against the lowest (or highest) sodium in
-the window that ends there; windows are inclusive at both ends ([t - 24 h, t]). Of equal lows the
-latest is the nadir, since a rise begins there. Censored sodium values are left out: a rise cannot
-be measured on a bound.
+What is judged. Each sodium point is the measured sodium, or the glucose-corrected sodium when a
+laboratory glucose drawn within the pairing window is at or above ``corrected_sodium_from_glucose``
+(250 mg/dL): in hyperglycaemia measured sodium rises as glucose falls while tonicity does not, and
+treating that rise as overcorrection would invite a response that lowers tonicity. Sentences say
+which sodium was judged.
 
-Rise (hyponatraemia), flagged when the nadir is strictly below ``applies_below`` (130):
-  rise from the 24 h nadir strictly above ``limit_24h`` (10), or ``limit_24h_high_risk`` (8) when the
-  data show high risk: a 48 h nadir at or below 105, or a potassium strictly below 3.5 in the 48 h
-  window; or rise from the 48 h nadir strictly above ``limit_48h`` (18).
-Projected rise, a warning while no limit is crossed yet: rise since the 24 h nadir, measured over at
-  least ``projection_min_hours`` (inclusive), which extrapolated to 24 h would be strictly above the
-  24 h limit.
-Fall (hypernatraemia), flagged when the 24 h peak is strictly above ``applies_above`` (145):
-  fall from that peak strictly above ``limit_24h`` (10), or a fall strictly faster than
-  ``max_rate_per_hour`` (0.5) measured over at least ``rate_min_hours`` (4, inclusive).
+Like with like. Whole-blood (direct ISE) and laboratory (indirect ISE) sodium differ by a few
+mmol/L (Story DA et al, Anesth Analg 2007;104:893-897). A change measured between the two kinds
+counts only by what exceeds ``method_bias_allowance``. Every change is measured from a point drawn
+strictly earlier than the latest one: two results of the same instant give no rate at all. Suspect
+results (``service.domain.artefacts``) never reach these rules.
+
+Rise (hypotonic hyponatraemia), flagged when the reference point (the nadir) is strictly below
+  ``applies_below`` (130) and no measured serum osmolality paired with the nadir is at or above
+  ``stand_down_measured_osmolality_at_least`` (275, not hypotonic): a rise from the 24 h nadir
+  strictly above ``limit_24h`` (10; ``limit_24h_after_first_day`` once the latest point is more
+  than 24 h after the 48 h nadir; ``limit_24h_high_risk`` (8) when the data show high risk: a 48 h
+  nadir at or below 105 or a potassium strictly below 3.5 in the 48 h window), or a rise from the
+  48 h nadir strictly above ``limit_48h`` (18).
+Projected rise, a warning while no limit is crossed: at least ``projection_min_results_after_nadir``
+  results of the same method after the 24 h nadir, a rise strictly above ``projection_min_change``
+  (the sodium reference change value) over at least ``projection_min_hours``, whose pace
+  extrapolated to 24 h is strictly above the 24 h limit.
+Fall (hypernatraemia), flagged when the 24 h peak is strictly above ``applies_above`` (145): a fall
+  strictly above ``limit_24h`` (10), or strictly faster than ``max_rate_per_hour`` (0.5) measured
+  over at least ``rate_min_hours`` (4).
+Fall in a hyperglycaemic crisis: the data show a crisis (``service.domain.crisis``) when the 24 h
+  peak was drawn, and the fall from it is strictly above ``crisis_fall.limit_24h``. It speaks
+  instead of the hypernatraemia fall when both would.
 
 Decision support only: these describe the data against site policy; they do not prescribe.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import timedelta
 
+from service.domain.crisis import crisis_at
+from service.domain.derived import corrected_sodium, pair_nearest
 from service.domain.findings import Finding, Priority, Rule
-from service.domain.rules.series import (
-    LAB_BLOOD,
-    Verdict,
-    below,
-    exact,
-    fmt,
-    hours,
-    latest_max,
-    latest_min,
-    trailing_run_start,
-    within,
-)
-from service.domain.values import Analyte, LabResult
+from service.domain.rules.series import LAB_BLOOD, Verdict, below, exact, fmt, hours, trailing_run_start
+from service.domain.values import Analyte, InsulinExposure, LabResult, Method, Specimen
 from service.policy.model import Policy
 
 __all__ = ["evaluate_sodium_rate"]
 
 _DAY = timedelta(hours=24)
 _TWO_DAYS = timedelta(hours=48)
+
+
+@dataclass(frozen=True, slots=True)
+class _Point:
+    result: LabResult
+    value: float  # the sodium judged: corrected for glucose when glucose was high, else measured
+    glucose: LabResult | None  # the glucose it was corrected with
+
+    @property
+    def corrected(self) -> bool:
+        return self.glucose is not None
+
+    @property
+    def refs(self) -> tuple[str, ...]:
+        return (self.result.reference,) + ((self.glucose.reference,) if self.glucose else ())
 
 
 @dataclass(frozen=True, slots=True)
@@ -56,173 +77,299 @@ class _Assessment:
     sentence: str
 
 
-def evaluate_sodium_rate(results: Sequence[LabResult], policy: Policy, patient: str) -> list[Finding]:
+@dataclass(frozen=True, slots=True)
+class _Change:
+    """The change of the latest point from a strictly earlier reference point."""
+
+    ref: _Point
+    current: _Point
+    allowance: float  # the method bias allowance when the two are of different methods, else 0
+
+    @property
+    def amount(self) -> float:
+        return self.current.value - self.ref.value
+
+    @property
+    def hours(self) -> float:
+        return hours(self.ref.result.effective, self.current.result.effective)
+
+    def label(self) -> str:
+        return "Glucose-corrected sodium" if self.ref.corrected or self.current.corrected else "Sodium"
+
+    def details(self) -> str:
+        parts = []
+        if self.ref.corrected or self.current.corrected:
+            parts.append(
+                f"measured {fmt(self.ref.result.value or 0.0)} to {fmt(self.current.result.value or 0.0)}"
+            )
+        if self.allowance:
+            parts.append(f"whole-blood and laboratory sodium compared with a {fmt(self.allowance)} mmol/L "
+                         "method allowance")
+        return f" ({'; '.join(parts)})" if parts else ""
+
+    def numbers(self) -> dict[str, float]:
+        return {
+            "hours": self.hours,
+            "corrected": 1.0 if self.ref.corrected or self.current.corrected else 0.0,
+            "measured_start": self.ref.result.value or 0.0,
+            "measured_now": self.current.result.value or 0.0,
+            "method_allowance": self.allowance,
+        }
+
+
+def evaluate_sodium_rate(
+    results: Sequence[LabResult],
+    exposures: Sequence[InsulinExposure],
+    policy: Policy,
+    patient: str,
+) -> list[Finding]:
     """Rise, projected-rise and fall findings for one patient's time-ordered, urine-free results."""
-    sodium = exact(
-        r for r in results if r.analyte is Analyte.SODIUM and r.specimen in policy.sodium.specimens
-    )
+    points = _points(results, policy)
     potassium = [r for r in results if r.analyte is Analyte.POTASSIUM and r.specimen in LAB_BLOOD]
 
     def rise(i: int) -> _Assessment | None:
-        return _rise(sodium[: i + 1], potassium, policy)
+        return _rise(points[: i + 1], potassium, results, policy)
 
     def projected(i: int) -> _Assessment | None:
-        return _projected(sodium[: i + 1], potassium, policy)
+        return _projected(points[: i + 1], potassium, results, policy)
 
     def fall(i: int) -> _Assessment | None:
-        return _fall(sodium[: i + 1], policy)
+        return _fall(points[: i + 1], policy)
 
-    findings = []
-    for assess in (rise, projected, fall):
-        start = trailing_run_start(len(sodium), lambda i: assess(i) is not None)  # noqa: B023
+    def crisis_fall(i: int) -> _Assessment | None:
+        return _crisis_fall(points[: i + 1], results, exposures, policy)
+
+    findings: dict[str, Finding] = {}
+    assessments: list[tuple[str, Callable[[int], _Assessment | None]]] = [
+        ("rise", rise), ("projected", projected), ("fall", fall), ("crisis_fall", crisis_fall)
+    ]
+    for name, assess in assessments:
+        start = trailing_run_start(len(points), lambda i: assess(i) is not None)  # noqa: B023
         if start is None:
             continue
-        current = assess(len(sodium) - 1)
+        current = assess(len(points) - 1)
         assert current is not None  # the run ends at the last point, so it fires there
-        findings.append(
-            Finding.of(
-                rule=current.rule,
-                patient=patient,
-                priority=current.priority,
-                evidence=current.evidence,
-                numbers=current.numbers,
-                sentence=current.sentence,
-                onset=sodium[start].effective,
-                encounter=sodium[-1].encounter,
-            )
+        findings[name] = Finding.of(
+            rule=current.rule,
+            patient=patient,
+            priority=current.priority,
+            evidence=current.evidence,
+            numbers=current.numbers,
+            sentence=current.sentence,
+            onset=points[start].result.effective,
+            encounter=points[-1].result.encounter,
         )
-    return findings
+    if "crisis_fall" in findings:
+        findings.pop("fall", None)  # one fall, one Flag: the crisis wording says more
+    return list(findings.values())
+
+
+def _points(results: Sequence[LabResult], policy: Policy) -> list[_Point]:
+    window = timedelta(minutes=policy.derived.pairing_minutes)
+    glucose = exact(r for r in results if r.analyte is Analyte.GLUCOSE and r.specimen in LAB_BLOOD)
+    points = []
+    for na in exact(r for r in results if r.analyte is Analyte.SODIUM and r.specimen in policy.sodium.specimens):
+        assert na.value is not None
+        glu = pair_nearest(na, glucose, window)
+        if glu is not None and glu.value is not None and glu.value >= policy.derived.corrected_sodium_from_glucose:
+            value = corrected_sodium(na.value, glu.value, policy.derived.sodium_glucose_factor)
+            points.append(_Point(na, value, glu))
+        else:
+            points.append(_Point(na, na.value, None))
+    return points
+
+
+def _allowance(a: _Point, b: _Point, policy: Policy) -> float:
+    ma, mb = a.result.method, b.result.method
+    same = ma is mb and ma is not Method.UNKNOWN
+    return 0.0 if same else policy.sodium.method_bias_allowance
+
+
+def _earlier(points: Sequence[_Point], span: timedelta) -> list[_Point]:
+    """Points drawn strictly before the latest one and no more than ``span`` before it."""
+    end = points[-1].result.effective
+    return [p for p in points[:-1] if end - span <= p.result.effective < end]
+
+
+def _lowest(points: Sequence[_Point], span: timedelta, policy: Policy) -> _Change | None:
+    """The change from the reference that shows the largest rise beyond method allowance; of
+    equals, the latest (a rise is measured from where it began)."""
+    current = points[-1]
+    best: _Change | None = None
+    for p in _earlier(points, span):
+        change = _Change(p, current, _allowance(p, current, policy))
+        if best is None or change.amount - change.allowance >= best.amount - best.allowance:
+            best = change
+    return best
+
+
+def _highest(points: Sequence[_Point], span: timedelta, policy: Policy) -> _Change | None:
+    """The change from the reference that shows the largest fall beyond method allowance."""
+    current = points[-1]
+    best: _Change | None = None
+    for p in _earlier(points, span):
+        change = _Change(p, current, _allowance(p, current, policy))
+        if best is None or -change.amount - change.allowance >= -best.amount - best.allowance:
+            best = change
+    return best
 
 
 @dataclass(frozen=True, slots=True)
 class _Rise:
-    nadir: LabResult
-    current: LabResult
-    rise: float
-    hours: float
+    change: _Change
     limit: float
     window: int
     risk: tuple[str, ...]  # references proving high risk; empty when normal risk
     risk_words: str
 
+    @property
+    def beyond(self) -> float:
+        """The rise that counts: the measured rise less any method allowance."""
+        return self.change.amount - self.change.allowance
 
-def _measure(sodium: Sequence[LabResult], potassium: Sequence[LabResult], policy: Policy) -> list[_Rise]:
+
+def _hypertonic(nadir: _Point, results: Sequence[LabResult], policy: Policy) -> bool:
+    measured = exact(
+        r for r in results
+        if r.analyte is Analyte.OSMOLALITY and r.specimen is Specimen.SERUM_PLASMA and not r.calculated
+    )
+    osm = pair_nearest(nadir.result, measured, timedelta(minutes=policy.derived.pairing_minutes))
+    limit = policy.sodium.rise.stand_down_measured_osmolality_at_least
+    return osm is not None and osm.value is not None and osm.value >= limit
+
+
+def _measure(
+    points: Sequence[_Point], potassium: Sequence[LabResult], results: Sequence[LabResult], policy: Policy
+) -> list[_Rise]:
     """The 24 h and 48 h rise of the latest sodium (when its nadir is in range), 24 h first."""
     rules = policy.sodium.rise
-    current = sodium[-1]
-    nadir24 = latest_min(within(sodium, current.effective, _DAY))
-    nadir48 = latest_min(within(sodium, current.effective, _TWO_DAYS))
+    day, two_days = _lowest(points, _DAY, policy), _lowest(points, _TWO_DAYS, policy)
+    if day is None or two_days is None:
+        return []
+    current = points[-1]
     risk: list[str] = []
     words: list[str] = []
-    if nadir48.value is not None and nadir48.value <= rules.high_risk_nadir_at_or_below:
-        risk.append(nadir48.reference)
-        words.append(f"nadir {fmt(nadir48.value)}")
+    if two_days.ref.value <= rules.high_risk_nadir_at_or_below:
+        risk.append(two_days.ref.result.reference)
+        words.append(f"nadir {fmt(two_days.ref.value)}")
+    end = current.result.effective
     low_k = [
-        k
-        for k in within(potassium, current.effective, _TWO_DAYS)
-        if below(k, rules.high_risk_potassium_below) is Verdict.DANGER
+        k for k in potassium
+        if end - _TWO_DAYS <= k.effective <= end and below(k, rules.high_risk_potassium_below) is Verdict.DANGER
     ]
     if low_k:
         risk.append(low_k[-1].reference)
         words.append(f"potassium {low_k[-1].comparator or ''}{fmt(low_k[-1].value or 0.0)}")
     limit24 = rules.limit_24h_high_risk if risk else rules.limit_24h
+    if hours(two_days.ref.result.effective, end) > 24.0:
+        limit24 = min(limit24, rules.limit_24h_after_first_day)
     measured = []
-    for nadir, limit, window in ((nadir24, limit24, 24), (nadir48, rules.limit_48h, 48)):
-        assert nadir.value is not None and current.value is not None
-        if nadir.value < rules.applies_below:
+    for change, limit, window in ((day, limit24, 24), (two_days, rules.limit_48h, 48)):
+        if change.ref.value < rules.applies_below and not _hypertonic(change.ref, results, policy):
             measured.append(
-                _Rise(
-                    nadir=nadir,
-                    current=current,
-                    rise=current.value - nadir.value,
-                    hours=hours(nadir.effective, current.effective),
-                    limit=limit,
-                    window=window,
-                    risk=tuple(risk) if window == 24 else (),
-                    risk_words=", ".join(words) if window == 24 else "",
-                )
+                _Rise(change=change, limit=limit, window=window,
+                      risk=tuple(risk) if window == 24 else (),
+                      risk_words=", ".join(words) if window == 24 else "")
             )
     return measured
 
 
-def _rise(sodium: Sequence[LabResult], potassium: Sequence[LabResult], policy: Policy) -> _Assessment | None:
-    for m in _measure(sodium, potassium, policy):
-        if m.rise > m.limit:
+def _rise(
+    points: Sequence[_Point], potassium: Sequence[LabResult], results: Sequence[LabResult], policy: Policy
+) -> _Assessment | None:
+    for m in _measure(points, potassium, results, policy):
+        if m.beyond > m.limit:
+            c = m.change
             risk = f" (high risk: {m.risk_words})" if m.risk else ""
             return _Assessment(
                 rule=Rule.SODIUM_RISE_TOO_FAST,
                 priority=Priority.HIGH,
-                evidence=(m.nadir.reference, m.current.reference, *m.risk),
+                evidence=(*c.ref.refs, *c.current.refs, *m.risk),
                 numbers=_numbers(m),
                 sentence=(
-                    f"Sodium rose {fmt(m.rise)} mmol/L in {fmt(m.hours)} h, from {fmt(m.nadir.value or 0)} "
-                    f"to {fmt(m.current.value or 0)}; limit {fmt(m.limit)} mmol/L in any {m.window} h{risk}."
+                    f"{c.label()} rose {fmt(c.amount)} mmol/L in {fmt(c.hours)} h, from {fmt(c.ref.value)} "
+                    f"to {fmt(c.current.value)}{c.details()}; limit {fmt(m.limit)} mmol/L in any "
+                    f"{m.window} h{risk}."
                 ),
             )
     return None
 
 
 def _projected(
-    sodium: Sequence[LabResult], potassium: Sequence[LabResult], policy: Policy
+    points: Sequence[_Point], potassium: Sequence[LabResult], results: Sequence[LabResult], policy: Policy
 ) -> _Assessment | None:
-    measured = _measure(sodium, potassium, policy)
-    if any(m.rise > m.limit for m in measured):
+    rules = policy.sodium.rise
+    measured = _measure(points, potassium, results, policy)
+    if any(m.beyond > m.limit for m in measured):
         return None  # already crossed: the rise finding speaks instead
     day = next((m for m in measured if m.window == 24), None)
-    if day is None or day.rise <= 0 or day.hours < policy.sodium.rise.projection_min_hours:
+    if day is None:
         return None
-    rate = day.rise / day.hours
+    # A projection extrapolates one analyser's trend: a step between methods is no trend.
+    current = points[-1]
+    same = [p for p in points if p.result.method is current.result.method]
+    change = _lowest(same, _DAY, policy) if current.result.method is not Method.UNKNOWN else None
+    if change is None or change.ref.value >= rules.applies_below:
+        return None
+    after = [p for p in same if p.result.effective > change.ref.result.effective]
+    if (
+        len(after) < rules.projection_min_results_after_nadir
+        or change.amount <= rules.projection_min_change
+        or change.hours < rules.projection_min_hours
+    ):
+        return None
+    rate = change.amount / change.hours
     projection = rate * 24.0
     if projection <= day.limit:
         return None
     risk = f" (high risk: {day.risk_words})" if day.risk else ""
+    numbers = _numbers(_Rise(change, day.limit, 24, day.risk, day.risk_words))
     return _Assessment(
         rule=Rule.SODIUM_RISE_PROJECTED,
         priority=Priority.MEDIUM,
-        evidence=(day.nadir.reference, day.current.reference, *day.risk),
-        numbers=_numbers(day) | {"rate_per_hour": rate, "projected_24h": projection},
+        evidence=(*change.ref.refs, *change.current.refs, *day.risk),
+        numbers=numbers | {"rate_per_hour": rate, "projected_rise_24h": projection},
+        # Worded as a pace, never as a level: "would rise 15 mmol/L in 24 h", not "reach 15".
         sentence=(
-            f"Sodium rose {fmt(day.rise)} mmol/L in {fmt(day.hours)} h from a nadir of "
-            f"{fmt(day.nadir.value or 0)} ({fmt(rate)} mmol/L/h), a pace that would reach "
-            f"{fmt(projection)} mmol/L in 24 h; limit {fmt(day.limit)} mmol/L in any 24 h{risk}."
+            f"{change.label()} rose {fmt(change.amount)} mmol/L in {fmt(change.hours)} h from a nadir of "
+            f"{fmt(change.ref.value)}{change.details()} ({fmt(rate)} mmol/L/h); at this pace the rise "
+            f"over 24 h would be {fmt(projection)} mmol/L; limit {fmt(day.limit)} mmol/L in any 24 h{risk}."
         ),
     )
 
 
 def _numbers(m: _Rise) -> dict[str, float]:
-    return {
-        "rise": m.rise,
-        "hours": m.hours,
-        "nadir": m.nadir.value or 0.0,
-        "sodium": m.current.value or 0.0,
+    c = m.change
+    return c.numbers() | {
+        "rise": c.amount,
+        "nadir": c.ref.value,
+        "sodium": c.current.value,
         "limit": m.limit,
         "window_hours": float(m.window),
         "high_risk": 1.0 if m.risk else 0.0,
     }
 
 
-def _fall(sodium: Sequence[LabResult], policy: Policy) -> _Assessment | None:
+def _fall(points: Sequence[_Point], policy: Policy) -> _Assessment | None:
     rules = policy.sodium.fall
-    current = sodium[-1]
-    peak = latest_max(within(sodium, current.effective, _DAY))
-    assert peak.value is not None and current.value is not None
-    if peak.value <= rules.applies_above:
+    change = _highest(points, _DAY, policy)
+    if change is None or change.ref.value <= rules.applies_above:
         return None
-    fall = peak.value - current.value
-    span = hours(peak.effective, current.effective)
-    numbers = {
+    fall = -change.amount
+    beyond = fall - change.allowance
+    span = change.hours
+    numbers = change.numbers() | {
         "fall": fall,
-        "hours": span,
-        "peak": peak.value,
-        "sodium": current.value,
+        "peak": change.ref.value,
+        "sodium": change.current.value,
         "limit": rules.limit_24h,
         "max_rate_per_hour": rules.max_rate_per_hour,
     }
-    base = f"Sodium fell {fmt(fall)} mmol/L in {fmt(span)} h"
-    values = f"from {fmt(peak.value)} to {fmt(current.value)}"
-    if fall > rules.limit_24h:
+    base = f"{change.label()} fell {fmt(fall)} mmol/L in {fmt(span)} h"
+    values = f"from {fmt(change.ref.value)} to {fmt(change.current.value)}{change.details()}"
+    if beyond > rules.limit_24h:
         sentence = f"{base}, {values}; limit {fmt(rules.limit_24h)} mmol/L in any 24 h."
-    elif span >= rules.rate_min_hours and fall / span > rules.max_rate_per_hour:
+    elif span >= rules.rate_min_hours and beyond / span > rules.max_rate_per_hour:
         numbers["rate_per_hour"] = fall / span
         sentence = (
             f"{base} ({fmt(fall / span)} mmol/L/h), {values}; limit {fmt(rules.max_rate_per_hour)} "
@@ -233,7 +380,35 @@ def _fall(sodium: Sequence[LabResult], policy: Policy) -> _Assessment | None:
     return _Assessment(
         rule=Rule.SODIUM_FALL_TOO_FAST,
         priority=Priority.MEDIUM,
-        evidence=(peak.reference, current.reference),
+        evidence=(*change.ref.refs, *change.current.refs),
         numbers=numbers,
         sentence=sentence,
+    )
+
+
+def _crisis_fall(
+    points: Sequence[_Point], results: Sequence[LabResult], exposures: Sequence[InsulinExposure], policy: Policy
+) -> _Assessment | None:
+    rules = policy.sodium.crisis_fall
+    change = _highest(points, _DAY, policy)
+    if change is None:
+        return None
+    fall = -change.amount
+    if fall - change.allowance <= rules.limit_24h:
+        return None
+    crisis = crisis_at(change.ref.result.effective, results, exposures, policy)
+    if crisis is None:
+        return None
+    return _Assessment(
+        rule=Rule.SODIUM_FALL_IN_CRISIS,
+        priority=rules.priority,
+        evidence=(*change.ref.refs, *change.current.refs, *crisis.evidence),
+        numbers=change.numbers() | {"fall": fall, "peak": change.ref.value, "sodium": change.current.value,
+                                    "limit": rules.limit_24h},
+        sentence=(
+            f"{change.label()} fell {fmt(fall)} mmol/L in {fmt(change.hours)} h during a hyperglycaemic "
+            f"crisis ({crisis.because}), from {fmt(change.ref.value)} to {fmt(change.current.value)}"
+            f"{change.details()}; limit {fmt(rules.limit_24h)} mmol/L in 24 h. A falling corrected sodium "
+            "during treatment is a recognised warning sign of cerebral oedema."
+        ),
     )
