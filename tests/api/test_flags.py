@@ -118,18 +118,58 @@ def test_new_evidence_makes_a_new_version_of_the_same_flag(client: TestClient) -
     assert history["total"] == 2
 
 
-def test_hypokalemia_during_insulin_raised_by_the_recheck_job_once_overdue(
+def test_hypokalemia_during_insulin_is_raised_at_once_and_the_recheck_job_raises_its_priority(
     client: TestClient, context: AppContext, clock: FixedClock
 ) -> None:
-    # K <3.5 during an IV insulin infusion with no newer K within 2 h (Umpierrez 2024 [from memory];
-    # recheck 2-hourly, JBDS DKA [from memory]; clinical-reference §6).
+    # K 3.4 < 3.5 during an IV insulin infusion (Umpierrez GE et al, Diabetes Care 2024;47:1257-1275
+    # [from memory]): medium at once; no newer K within 2 h (JBDS DKA recheck 2-hourly [from memory])
+    # raises it to high by time alone.
     send(client, insulin("m1", start="2026-03-02T09:00:00+00:00"),
-         observation("k1", code="2823-3", value=3.2, effective="2026-03-02T11:00:00+00:00"))
-    assert "hypokalemia-on-insulin" not in rules(client)
+         observation("k1", code="2823-3", value=3.4, effective="2026-03-02T11:00:00+00:00"))
+    (flag,) = [f for f in flags(client) if f["code"]["coding"][0]["code"] == "hypokalemia-on-insulin"]
+    assert flag["extension"][0]["valueCodeableConcept"]["coding"][0]["code"] == "PM"
     clock.advance(timedelta(hours=1, minutes=30))  # 13:30: 2.5 h since the last potassium
     assert context.evaluator.recheck(context.db, clock.now()) >= 1
-    assert "hypokalemia-on-insulin" in rules(client)
+    (flag,) = [f for f in flags(client) if f["code"]["coding"][0]["code"] == "hypokalemia-on-insulin"]
+    assert flag["extension"][0]["valueCodeableConcept"]["coding"][0]["code"] == "PH"
     assert context.evaluator.recheck(context.db, clock.now()) == 0  # a second run changes nothing
+
+
+def test_an_infusion_stopped_without_an_end_time_ends_when_that_status_arrives(
+    client: TestClient, context: AppContext, clock: FixedClock
+) -> None:
+    # K 3.4 < 3.5 during IV insulin (Umpierrez 2024 [from memory]); the IV tail of 60 min is common
+    # practice, no source. A "stopped" infusion with no effectivePeriod.end must not run forever.
+    send(client, insulin("m1", start="2026-03-02T09:00:00+00:00"),
+         observation("k1", code="2823-3", value=3.4, effective="2026-03-02T11:00:00+00:00"))
+    assert "hypokalemia-on-insulin" in rules(client)
+    send(client, insulin("m1", start="2026-03-02T09:00:00+00:00", status="stopped"))  # arrives at 12:00
+    clock.advance(timedelta(minutes=59))
+    context.evaluator.recheck(context.db, clock.now())
+    assert "hypokalemia-on-insulin" in rules(client)  # inside the tail
+    clock.advance(timedelta(minutes=2))
+    context.evaluator.recheck(context.db, clock.now())
+    assert "hypokalemia-on-insulin" not in rules(client)
+
+
+def test_insulin_started_on_a_potassium_below_the_hold_threshold_is_flagged_high_at_once(
+    client: TestClient,
+) -> None:
+    # K 3.1 < 3.3: guidelines advise holding insulin (Kitabchi 2009); the infusion starts 30 min later,
+    # coded with the HL7 v2 route IV and carrying a rate.
+    send(client, observation("k1", code="2823-3", value=3.1, effective="2026-03-02T11:00:00+00:00"))
+    assert "hypokalemia-on-insulin" not in rules(client)
+    drip = insulin("m1", start="2026-03-02T11:30:00+00:00") | {"dosage": {
+        "route": {"coding": [{"system": "http://terminology.hl7.org/CodeSystem/v2-0162", "code": "IV"}]},
+        "rateQuantity": {"value": 6, "system": "http://unitsofmeasure.org", "code": "[iU]/h"}}}
+    send(client, drip)
+    (flag,) = [f for f in flags(client) if f["code"]["coding"][0]["code"] == "hypokalemia-on-insulin"]
+    assert flag["extension"][0]["valueCodeableConcept"]["coding"][0]["code"] == "PH"
+    assert "guidelines advise holding insulin until potassium is at least 3.3 mmol/L" in flag["code"]["text"]
+    details = [e["valueReference"]["reference"] for e in flag["extension"]
+               if e["url"].endswith("flag-detail")]
+    assert any(d.startswith("Observation/") for d in details)
+    assert any(d.startswith("MedicationAdministration/") for d in details)
 
 
 def test_flag_search_filters_and_includes_evidence(client: TestClient) -> None:
