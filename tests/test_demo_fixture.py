@@ -232,9 +232,9 @@ def test_every_watched_line_is_accepted_by_the_service_normalisers() -> None:
     assert len(watched) + len(source.ignored) == len(lines())
 
 
-def test_scenario_covers_ten_to_fourteen_patients_named_only_by_ward_ids() -> None:
+def test_scenario_covers_ten_to_sixteen_patients_named_only_by_ward_ids() -> None:
     patients = ward().patients
-    assert 10 <= len(patients) <= 14
+    assert 10 <= len(patients) <= 16
     assert all(p.startswith("Patient/ward-") for p in patients)
 
 

@@ -103,6 +103,13 @@ def test_one_fall_raises_one_flag_the_crisis_fall_speaks_for_it() -> None:
     assert Rule.SODIUM_FALL_TOO_FAST not in result
 
 
+def test_a_fall_that_began_in_a_crisis_is_not_judged_by_the_hypernatraemia_rate() -> None:
+    # corrected 149.9 -> 144 in 10 h: 5.9 (0.59/h > 0.5/h) but under the crisis limit of 10
+    result = findings(na(140, 0), glu(40, 0), na(144, 10), glu(12, 10))
+    assert Rule.SODIUM_FALL_TOO_FAST not in result
+    assert Rule.SODIUM_FALL_IN_CRISIS not in result
+
+
 # ---- like with like ----------------------------------------------------------------------------
 
 

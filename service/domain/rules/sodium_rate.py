@@ -28,8 +28,8 @@ Fall (hypernatraemia), flagged when the 24 h peak is strictly above ``applies_ab
   strictly above ``limit_24h`` (10), or strictly faster than ``max_rate_per_hour`` (0.5) measured
   over at least ``rate_min_hours`` (4).
 Fall in a hyperglycaemic crisis: the data show a crisis (``service.domain.crisis``) when the 24 h
-  peak was drawn, and the fall from it is strictly above ``crisis_fall.limit_24h``. It speaks
-  instead of the hypernatraemia fall when both would.
+  peak was drawn, and the fall from it is strictly above ``crisis_fall.limit_24h``. A fall that
+  began in a crisis is judged by this limit only, never by the hypernatraemia one.
 
 Decision support only: these describe the data against site policy; they do not prescribe.
 """
@@ -134,7 +134,7 @@ def evaluate_sodium_rate(
         return _projected(points[: i + 1], potassium, results, policy)
 
     def fall(i: int) -> _Assessment | None:
-        return _fall(points[: i + 1], policy)
+        return _fall(points[: i + 1], results, exposures, policy)
 
     def crisis_fall(i: int) -> _Assessment | None:
         return _crisis_fall(points[: i + 1], results, exposures, policy)
@@ -159,8 +159,6 @@ def evaluate_sodium_rate(
             onset=points[start].result.effective,
             encounter=points[-1].result.encounter,
         )
-    if "crisis_fall" in findings:
-        findings.pop("fall", None)  # one fall, one Flag: the crisis wording says more
     return list(findings.values())
 
 
@@ -350,11 +348,15 @@ def _numbers(m: _Rise) -> dict[str, float]:
     }
 
 
-def _fall(points: Sequence[_Point], policy: Policy) -> _Assessment | None:
+def _fall(
+    points: Sequence[_Point], results: Sequence[LabResult], exposures: Sequence[InsulinExposure], policy: Policy
+) -> _Assessment | None:
     rules = policy.sodium.fall
     change = _highest(points, _DAY, policy)
     if change is None or change.ref.value <= rules.applies_above:
         return None
+    if crisis_at(change.ref.result.effective, results, exposures, policy) is not None:
+        return None  # a fall that began in a crisis is judged by the crisis limit, not this one
     fall = -change.amount
     beyond = fall - change.allowance
     span = change.hours
