@@ -47,6 +47,12 @@ STREAM: list[dict[str, Any]] = [
     observation("d1", code="2345-7", value=30, unit="mg/dL", patient="Patient/d",
                 effective="2026-03-02T09:00:00+00:00", status="entered-in-error"),
     observation("e1", value=139, patient="Patient/e", effective="2026-03-02T09:00:00+00:00"),
+    # Ties: one instant, two results (the same specimen run twice, a gas and a lab sample stamped alike).
+    observation("f1", value=118, patient="Patient/f", effective="2026-03-02T09:00:00+00:00"),
+    observation("f2", value=140, patient="Patient/f", effective="2026-03-02T09:00:00+00:00"),
+    insulin("g-ins", patient="Patient/g", start="2026-03-02T06:00:00+00:00"),
+    observation("g1", code="2823-3", value=3.4, patient="Patient/g", effective="2026-03-02T10:00:00+00:00"),
+    observation("g2", code="2823-3", value=4.0, patient="Patient/g", effective="2026-03-02T10:00:00+00:00"),
 ]
 
 
@@ -83,6 +89,8 @@ IN_ORDER = active_flags(STREAM)
 def test_the_stream_in_order_raises_the_expected_flags() -> None:
     assert sorted((rule, subject) for rule, subject, *_ in IN_ORDER) == [
         ("hypokalemia-on-insulin", "Patient/c"),
+        ("hypokalemia-on-insulin", "Patient/g"),
+        ("sodium-critical-low", "Patient/f"),
         ("sodium-rise-too-fast", "Patient/a"),
     ]
 
@@ -92,3 +100,24 @@ def test_the_stream_in_order_raises_the_expected_flags() -> None:
 def test_shuffled_stream_with_duplicates_gives_the_same_active_flags(order: list[int], repeats: list[int]) -> None:
     stream = [STREAM[i] for i in order] + [STREAM[i] for i in repeats]
     assert active_flags(stream) == IN_ORDER
+
+
+# Generated ties: sodium results whose collection times are drawn from three instants, so most
+# examples hold two or more results of one instant; any arrival order must end the same.
+_INSTANTS = ["2026-03-02T02:00:00+00:00", "2026-03-02T02:00:00+00:00", "2026-03-02T08:00:00+00:00",
+             "2026-03-02T11:00:00+00:00"]
+
+
+@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    draws=st.lists(st.tuples(st.sampled_from(_INSTANTS), st.integers(110, 165)), min_size=2, max_size=6),
+    order=st.randoms(use_true_random=False),
+)
+def test_results_that_tie_in_time_give_the_same_flags_in_any_arrival_order(
+    draws: list[tuple[str, int]], order: Any
+) -> None:
+    stream = [observation(f"tie{i}", value=value, patient="Patient/t", effective=when)
+              for i, (when, value) in enumerate(draws)]
+    shuffled = list(stream)
+    order.shuffle(shuffled)
+    assert active_flags(shuffled) == active_flags(stream)
