@@ -1,7 +1,7 @@
 """`lytestream audit export|summary` on an embedded SQLite store: rows match what the test did."""
 
 # Sodium 118 or 115 mmol/L stands for a result at or below the critical low of 120 mmol/L
-# (RCPath G158 2017; Kost 1990: clinical-reference §1), so it raises sodium-critical-low.
+# (RCPath G158 2017; Kost GJ, JAMA 1990;263:704-707), so it raises sodium-critical-low.
 
 from __future__ import annotations
 

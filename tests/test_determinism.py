@@ -6,7 +6,7 @@ closed on the way may differ with arrival order; the ones left standing may not.
 """
 
 # Sodium 118 or 115 mmol/L stands for a result at or below the critical low of 120 mmol/L
-# (RCPath G158 2017; Kost 1990: clinical-reference §1), so it raises sodium-critical-low.
+# (RCPath G158 2017; Kost GJ, JAMA 1990;263:704-707), so it raises sodium-critical-low.
 
 from __future__ import annotations
 

@@ -30,7 +30,7 @@ def rules(client: TestClient, status: str = "active") -> list[str]:
 
 
 def test_critical_low_sodium_raises_one_high_priority_flag(client: TestClient) -> None:
-    # Sodium <=120 mmol/L is critical (RCPath G158 2017; clinical-reference §1).
+    # Sodium <=120 mmol/L is critical (RCPath G158 2017).
     send(client, observation("na1", value=118))
     (flag,) = flags(client)
     Flag.model_validate(flag)
@@ -88,13 +88,13 @@ def test_late_older_result_does_not_reopen_a_cleared_flag(client: TestClient) ->
 
 
 def test_urine_sodium_never_raises_a_serum_flag(client: TestClient) -> None:
-    # 2955-3 Sodium [Moles/volume] in Urine (clinical-reference §8a): 10 mmol/L is ordinary in urine.
+    # 2955-3 Sodium [Moles/volume] in Urine (LOINC; VSAC value-set expansion of the sodium lab tests): 10 mmol/L is ordinary in urine.
     send(client, observation("u1", code="2955-3", value=10))
     assert flags(client) == []
 
 
 def test_sodium_rising_too_fast_is_flagged_with_its_numbers(client: TestClient) -> None:
-    # Rise above 10 mmol/L in 24 h from a nadir below 130 (Spasovski 2014, clinical-reference §2).
+    # Rise above 10 mmol/L in 24 h from a nadir below 130 (Spasovski G et al, Eur J Endocrinol 2014;170:G1-G47, from memory).
     send(client, observation("n0", value=112, effective="2026-03-01T16:00:00+00:00"),
          observation("n1", value=118, effective="2026-03-01T22:00:00+00:00"),
          observation("n2", value=123, effective="2026-03-02T08:00:00+00:00"))
@@ -200,7 +200,7 @@ def test_flag_search_refuses_unknown_include(client: TestClient) -> None:
 
 
 def test_late_earlier_result_continues_the_open_flag_instead_of_reopening(client: TestClient) -> None:
-    # A rise above 10 mmol/L in 24 h from a nadir below 130 (Spasovski 2014, clinical-reference §2);
+    # A rise above 10 mmol/L in 24 h from a nadir below 130 (Spasovski G et al, Eur J Endocrinol 2014;170:G1-G47, from memory);
     # a late result that already showed the rise earlier moves the episode's start, not the flag.
     send(client, observation("n1", value=114, effective="2026-03-01T20:00:00+00:00"),
          observation("n2", value=126, effective="2026-03-02T10:00:00+00:00"))

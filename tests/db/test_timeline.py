@@ -71,7 +71,7 @@ def test_urine_results_are_stored_but_marked_urine(client: TestClient, context: 
 
 
 def test_glucose_in_mg_dl_is_held_in_mmol_l(client: TestClient, context: AppContext) -> None:
-    # clinical-reference §8c: mg/dL x 0.0555074 = mmol/L; 600 mg/dL = 33.304 mmol/L.
+    # arithmetic from M(glucose) = 180.156 g/mol (IUPAC conventional atomic weights): mg/dL x 0.0555074 = mmol/L; 600 mg/dL = 33.304 mmol/L.
     send(client, observation("g", code="2345-7", value=600, unit="mg/dL"))
     assert timeline(context).results[0].value == pytest.approx(33.3045, abs=1e-3)
 

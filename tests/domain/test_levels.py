@@ -1,4 +1,4 @@
-"""Dangerous levels. Default limits: RCPath G158 2017 and Kost 1990 via clinical-reference §1
+"""Dangerous levels. Default limits: RCPath G158 2017 and Kost 1990
 (Na <=120 / >=160, K <=2.5 / >=6.5, glucose <=2.5 / >=25 mmol/L); osmolality <=250 (Kost table)
 / >=330 (Thomas 2003 eJIFCC). Both limits inclusive, as the reference writes them."""
 
@@ -31,33 +31,33 @@ def rules_for(*results, p=POLICY) -> set[Rule]:  # type: ignore[no-untyped-def]
 @pytest.mark.parametrize(
     ("make", "value", "rule", "flagged"),
     [
-        # RCPath G158 2017 via clinical-reference §1: sodium <=120 is critical
+        # RCPath G158 2017: sodium <=120 is critical
         (na, 120.0, Rule.SODIUM_CRITICAL_LOW, True),
         (na, 119.9, Rule.SODIUM_CRITICAL_LOW, True),
         (na, 120.1, Rule.SODIUM_CRITICAL_LOW, False),
-        # RCPath G158 2017 via clinical-reference §1: sodium >=160 is critical
+        # RCPath G158 2017: sodium >=160 is critical
         (na, 160.0, Rule.SODIUM_CRITICAL_HIGH, True),
         (na, 160.1, Rule.SODIUM_CRITICAL_HIGH, True),
         (na, 159.9, Rule.SODIUM_CRITICAL_HIGH, False),
-        # RCPath G158 2017 via clinical-reference §1: potassium <=2.5 / >=6.5
+        # RCPath G158 2017: potassium <=2.5 / >=6.5
         (k, 2.5, Rule.POTASSIUM_CRITICAL_LOW, True),
         (k, 2.4, Rule.POTASSIUM_CRITICAL_LOW, True),
         (k, 2.6, Rule.POTASSIUM_CRITICAL_LOW, False),
         (k, 6.5, Rule.POTASSIUM_CRITICAL_HIGH, True),
         (k, 6.6, Rule.POTASSIUM_CRITICAL_HIGH, True),
         (k, 6.4, Rule.POTASSIUM_CRITICAL_HIGH, False),
-        # RCPath G158 2017 via clinical-reference §1: glucose <=2.5 / >=25 mmol/L
+        # RCPath G158 2017: glucose <=2.5 / >=25 mmol/L
         (glu, 2.5, Rule.GLUCOSE_CRITICAL_LOW, True),
         (glu, 2.4, Rule.GLUCOSE_CRITICAL_LOW, True),
         (glu, 2.6, Rule.GLUCOSE_CRITICAL_LOW, False),
         (glu, 25.0, Rule.GLUCOSE_CRITICAL_HIGH, True),
         (glu, 25.1, Rule.GLUCOSE_CRITICAL_HIGH, True),
         (glu, 24.9, Rule.GLUCOSE_CRITICAL_HIGH, False),
-        # Kost critical-limits table via clinical-reference §1: osmolality low 250
+        # Kost critical-limits table: osmolality low 250
         (osm, 250.0, Rule.OSMOLALITY_CRITICAL_LOW, True),
         (osm, 249.0, Rule.OSMOLALITY_CRITICAL_LOW, True),
         (osm, 251.0, Rule.OSMOLALITY_CRITICAL_LOW, False),
-        # Thomas 2003 eJIFCC via clinical-reference §1: osmolality high 330
+        # Thomas 2003 eJIFCC: osmolality high 330
         (osm, 330.0, Rule.OSMOLALITY_CRITICAL_HIGH, True),
         (osm, 331.0, Rule.OSMOLALITY_CRITICAL_HIGH, True),
         (osm, 329.0, Rule.OSMOLALITY_CRITICAL_HIGH, False),
@@ -102,7 +102,7 @@ def test_urine_result_does_not_clear_a_serum_finding() -> None:
 
 
 def test_censored_glucose_above_600_mg_dl_proves_high() -> None:
-    # ">600 mg/dL" (33.3 mmol/L) proves >=25 mmol/L (brief; RCPath limit via clinical-reference §1)
+    # ">600 mg/dL" (33.3 mmol/L) proves >=25 mmol/L (brief; RCPath limit)
     bound = 600 / MG_DL_PER_MMOL_L
     [finding] = evaluate(timeline([glu(bound, 0, comparator=">")]), POLICY, at(1))
     assert finding.rule is Rule.GLUCOSE_CRITICAL_HIGH
@@ -150,7 +150,7 @@ def test_calculated_osmolality_result_is_not_a_measured_level() -> None:
 
 
 def test_low_sodium_with_high_glucose_shows_corrected_sodium() -> None:
-    # Katz 1973 via clinical-reference §4 example 4: Na 130 with glucose 33.3 -> 137.9987;
+    # Katz 1973, worked by hand (example 4): Na 130 with glucose 33.3 -> 137.9987;
     # here Na 118 with glucose 33.3 -> 118 + 7.9987 = 125.9987
     sodium, glucose = na(118, 0), glu(33.3, 0.1)
     findings = evaluate(timeline([sodium, glucose]), POLICY, at(1))

@@ -1,11 +1,10 @@
 """Sodium correction rates.
 
-Limits (clinical-reference §2, §3): rise >10 mmol/L in 24 h (Spasovski 2014 EU guideline, from
+Limits: rise >10 mmol/L in 24 h (Spasovski 2014 EU guideline, from
 memory), >8 in 24 h when high risk (Verbalis 2013 US panel, from memory), >18 in 48 h (Verbalis 2013,
 corroborated by Tandukar 2021), only while the nadir is below 130 (Spasovski 2014, from memory);
 high-risk features nadir <=105 or hypokalaemia (Verbalis 2013, from memory). Fall >10 mmol/L in 24 h
-or >0.5 mmol/L/h (Adrogué & Madias 2000, from memory), sustained >=4 h (clinical-reference §3 engine
-rule, common practice, no source), when the peak is above 145 (common practice, no source).
+or >0.5 mmol/L/h (Adrogué & Madias 2000, from memory), sustained >=4 h (common practice, no source), when the peak is above 145 (common practice, no source).
 """
 
 from __future__ import annotations
@@ -48,7 +47,7 @@ def test_rise_sentence_names_rise_span_values_and_limit() -> None:
 
 @pytest.mark.parametrize(("end", "flagged"), [(120.0, False), (120.1, True), (119.9, False)])
 def test_rise_limit_of_10_is_exclusive(end: float, flagged: bool) -> None:
-    # "above 10" (clinical-reference §2 engine rule): exactly 10 is not flagged
+    # "above 10" (common practice, no source): exactly 10 is not flagged
     assert (Rule.SODIUM_RISE_TOO_FAST in findings(na(110, 0), na(end, 23))) is flagged
 
 
@@ -102,7 +101,7 @@ def test_potassium_of_exactly_3_5_is_not_high_risk() -> None:
 
 @pytest.mark.parametrize(("end", "flagged"), [(128.0, False), (128.1, True)])
 def test_rise_of_more_than_18_in_48h_is_flagged(end: float, flagged: bool) -> None:
-    # Verbalis 2013 via Tandukar 2021 (clinical-reference §2): 18 mmol/L in any 48 h, exclusive.
+    # Verbalis 2013 as cited by Tandukar S et al, Kidney360 2021;2:1415-1423: 18 mmol/L in any 48 h, exclusive.
     # 9.8 in each day keeps every 24 h rise under 10.
     result = findings(na(110, 0), na(119.8, 24), na(end, 47))
     assert (Rule.SODIUM_RISE_TOO_FAST in result) is flagged

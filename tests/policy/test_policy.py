@@ -30,14 +30,14 @@ def test_default_policy_loads_from_package_data() -> None:
 
 def test_default_thresholds_match_the_clinical_reference() -> None:
     p = load_policy()
-    # RCPath G158 2017 via clinical-reference §1
+    # RCPath G158 2017
     sodium = p.level_for(Analyte.SODIUM, Specimen.SERUM_PLASMA)
     assert sodium is not None and (sodium.low, sodium.high) == (120.0, 160.0)
-    # Spasovski 2014 / Verbalis 2013 via clinical-reference §2 (from memory)
+    # Spasovski 2014 / Verbalis 2013 (from memory)
     assert (p.sodium.rise.limit_24h, p.sodium.rise.limit_24h_high_risk, p.sodium.rise.limit_48h) == (10, 8, 18)
-    # Mustafa 2023 JBDS via clinical-reference §5
+    # Mustafa 2023 JBDS
     assert (p.crisis.osmolality_max_fall_per_hour, p.crisis.glucose_max_fall_per_hour) == (8, 5)
-    # Umpierrez 2024 via clinical-reference §6 (from memory)
+    # Umpierrez 2024 (from memory)
     assert p.insulin_potassium.below == 3.5
 
 
@@ -78,7 +78,7 @@ def test_profiles_hash_differently() -> None:
 
 def test_paediatric_profile_overrides_only_what_it_names() -> None:
     adult, child = load_policy(), load_policy(profile="paediatric")
-    # Kitabchi 2009 via clinical-reference §5 (from memory): <=3 mOsm/kg/h
+    # Kitabchi 2009 (from memory): <=3 mOsm/kg/h
     assert child.crisis.osmolality_max_fall_per_hour == 3.0
     assert child.crisis.glucose_max_fall_per_hour == adult.crisis.glucose_max_fall_per_hour
     assert child.sodium.rise == adult.sodium.rise
