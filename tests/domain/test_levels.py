@@ -4,11 +4,13 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import pytest
 
 from service.domain.findings import Priority, Rule
 from service.domain.rules import evaluate
-from service.domain.values import Specimen
+from service.domain.values import Analyte, Specimen
 from service.policy import load_policy
 from tests.domain.test_support import (
     MG_DL_PER_MMOL_L,
@@ -185,3 +187,9 @@ def test_policy_helper_can_override_a_section() -> None:
     findings = evaluate(timeline([na(118, 0), glu(33.3, 0)]), p, at(1))
     [low] = [f for f in findings if f.rule is Rule.SODIUM_CRITICAL_LOW]
     assert "corrected" not in low.sentence
+
+
+def test_calcium_is_context_only_and_never_raises_a_flag() -> None:
+    # Calcium feeds the K2EDTA check (Cornes MP et al, Ann Clin Biochem 2008;45:601-603), nothing else.
+    calcium = replace(na(0.5, 0), analyte=Analyte.CALCIUM, loinc="2000-8")
+    assert evaluate(timeline([calcium]), load_policy(), at(1)) == []

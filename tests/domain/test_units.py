@@ -74,3 +74,10 @@ def test_ucum_is_case_sensitive() -> None:
     # UCUM: "mEq/L" is display text, not a case-sensitive UCUM code (the code is "meq/L").
     with pytest.raises(UnitNotAccepted):
         to_canonical(entry("2951-2"), 140.0, code="mEq/L", text=None)
+
+
+def test_calcium_mass_factor_agrees_with_pint() -> None:
+    # Ca 40.078 g/mol (IUPAC conventional atomic weight): 10 mg/dL = 2.495 mmol/L
+    expected = (1 * ureg("mg/dL") / (40.078 * ureg("g/mol"))).to("mmol/L").magnitude
+    assert to_canonical(entry("17861-6"), 1.0, code="mg/dL", text=None) == pytest.approx(expected, rel=1e-12)
+    assert to_canonical(entry("17861-6"), 10.0, code="mg/dL", text=None) == pytest.approx(2.495, abs=1e-3)
