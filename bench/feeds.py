@@ -60,11 +60,11 @@ _CL = Analyte("2075-0", "Chloride [Moles/volume] in Serum or Plasma", "mmol/L", 
 _CO2 = Analyte("2028-9", "Carbon dioxide, total [Moles/volume] in Serum or Plasma", "mmol/L", 16, 32, 0,
                22, 29, False)
 _CREA = Analyte("2160-0", "Creatinine [Mass/volume] in Serum or Plasma", "mg/dL", 0.5, 3.2, 2, 0.7, 1.3, False)
-_CA = Analyte("17861-6", "Calcium [Mass/volume] in Serum or Plasma", "mg/dL", 7.6, 10.8, 1, 8.6, 10.3, False)
+_CA = Analyte("17861-6", "Calcium [Mass/volume] in Serum or Plasma", "mg/dL", 7.6, 10.8, 1, 8.6, 10.3, True)
 
 # Every analyte watched: an electrolyte and osmolality draw.
 ALL_RELEVANT: tuple[Analyte, ...] = (_NA, _K, _GLU, _OSM, _BUN)
-# A basic metabolic panel: four of eight are watched.
+# A basic metabolic panel: five of eight are watched (calcium as context for the K2EDTA check).
 BASIC_PANEL: tuple[Analyte, ...] = (_NA, _K, _GLU, _BUN, _CL, _CO2, _CREA, _CA)
 
 

@@ -4,7 +4,7 @@
     python -m bench.ingest_benchmark --profile [--results N]
 
 From one run on the same generated feeds it measures, for an all-relevant feed and a basic
-metabolic panel feed (four of eight results watched):
+metabolic panel feed (five of eight results watched):
 
 * validation-only: fhir.resources R4B ``Observation.model_validate`` of every result (the floor
   a validating service cannot go under, and what a service that validates everything pays);

@@ -23,7 +23,7 @@ from collections.abc import Mapping, Sequence
 from datetime import timedelta
 
 from service.domain.derived import pair_nearest
-from service.domain.values import Analyte, LabResult
+from service.domain.values import Analyte, LabResult, Method
 from service.policy.model import Policy
 
 __all__ = ["suspects"]
@@ -36,16 +36,14 @@ def suspects(results: Sequence[LabResult], policy: Policy) -> Mapping[str, str]:
         if r.quality:
             found[r.reference] = f"sample {r.quality}"
     _edta(results, policy, found)
-    for analyte, check in policy.artefacts.delta.items():
-        series = [r for r in results if r.analyte is analyte and r.value is not None and r.comparator is None]
-        for method in {r.method for r in series}:
-            _delta(
-                [r for r in series if r.method is method],
-                check.change,
-                check.toward,
-                timedelta(hours=policy.artefacts.spike_within_hours),
-                found,
-            )
+    within = timedelta(hours=policy.artefacts.spike_within_hours)
+    series: dict[tuple[Analyte, Method], list[LabResult]] = {}
+    for r in results:
+        if r.analyte in policy.artefacts.delta and r.value is not None and r.comparator is None:
+            series.setdefault((r.analyte, r.method), []).append(r)
+    for (analyte, _), same in series.items():
+        check = policy.artefacts.delta[analyte]
+        _delta(same, check.change, check.toward, within, found)
     return found
 
 

@@ -58,6 +58,8 @@ class _Point:
     result: LabResult
     value: float  # the sodium judged: corrected for glucose when glucose was high, else measured
     glucose: LabResult | None  # the glucose it was corrected with
+    method: Method
+    hypertonic: bool  # a paired measured osmolality says this sodium is not hypotonic
 
     @property
     def corrected(self) -> bool:
@@ -127,11 +129,19 @@ def evaluate_sodium_rate(
     points = _points(results, policy)
     potassium = [r for r in results if r.analyte is Analyte.POTASSIUM and r.specimen in LAB_BLOOD]
 
+    measured: dict[int, list[_Rise]] = {}
+
+    def measure(i: int) -> list[_Rise]:
+        # The rise and the projection ask the same of each point: work it out once.
+        if i not in measured:
+            measured[i] = _measure(points[: i + 1], potassium, policy)
+        return measured[i]
+
     def rise(i: int) -> _Assessment | None:
-        return _rise(points[: i + 1], potassium, results, policy)
+        return _rise(measure(i))
 
     def projected(i: int) -> _Assessment | None:
-        return _projected(points[: i + 1], potassium, results, policy)
+        return _projected(points[: i + 1], measure(i), policy)
 
     def fall(i: int) -> _Assessment | None:
         return _fall(points[: i + 1], results, exposures, policy)
@@ -163,23 +173,33 @@ def evaluate_sodium_rate(
 
 
 def _points(results: Sequence[LabResult], policy: Policy) -> list[_Point]:
+    """Each sodium once, with everything the rules ask of it worked out here rather than per window."""
     window = timedelta(minutes=policy.derived.pairing_minutes)
     glucose = exact(r for r in results if r.analyte is Analyte.GLUCOSE and r.specimen in LAB_BLOOD)
+    osmolality = exact(
+        r for r in results
+        if r.analyte is Analyte.OSMOLALITY and r.specimen is Specimen.SERUM_PLASMA and not r.calculated
+    )
+    stand_down = policy.sodium.rise.stand_down_measured_osmolality_at_least
+    threshold = policy.derived.corrected_sodium_from_glucose
+    # Pair only where a pairing can matter: with a high glucose, and for a sodium low enough to be
+    # a hyponatraemic nadir.
+    high_glucose = [g for g in glucose if g.value is not None and g.value >= threshold]
     points = []
     for na in exact(r for r in results if r.analyte is Analyte.SODIUM and r.specimen in policy.sodium.specimens):
         assert na.value is not None
-        glu = pair_nearest(na, glucose, window)
-        if glu is not None and glu.value is not None and glu.value >= policy.derived.corrected_sodium_from_glucose:
-            value = corrected_sodium(na.value, glu.value, policy.derived.sodium_glucose_factor)
-            points.append(_Point(na, value, glu))
-        else:
-            points.append(_Point(na, na.value, None))
+        glu = pair_nearest(na, glucose, window) if high_glucose else None
+        corrected = glu is not None and glu.value is not None and glu.value >= threshold
+        value = corrected_sodium(na.value, glu.value, policy.derived.sodium_glucose_factor) if (
+            corrected and glu is not None and glu.value is not None) else na.value
+        osm = pair_nearest(na, osmolality, window) if osmolality and value < policy.sodium.rise.applies_below else None
+        hypertonic = osm is not None and osm.value is not None and osm.value >= stand_down
+        points.append(_Point(na, value, glu if corrected else None, na.method, hypertonic))
     return points
 
 
 def _allowance(a: _Point, b: _Point, policy: Policy) -> float:
-    ma, mb = a.result.method, b.result.method
-    same = ma is mb and ma is not Method.UNKNOWN
+    same = a.method is b.method and a.method is not Method.UNKNOWN
     return 0.0 if same else policy.sodium.method_bias_allowance
 
 
@@ -226,19 +246,7 @@ class _Rise:
         return self.change.amount - self.change.allowance
 
 
-def _hypertonic(nadir: _Point, results: Sequence[LabResult], policy: Policy) -> bool:
-    measured = exact(
-        r for r in results
-        if r.analyte is Analyte.OSMOLALITY and r.specimen is Specimen.SERUM_PLASMA and not r.calculated
-    )
-    osm = pair_nearest(nadir.result, measured, timedelta(minutes=policy.derived.pairing_minutes))
-    limit = policy.sodium.rise.stand_down_measured_osmolality_at_least
-    return osm is not None and osm.value is not None and osm.value >= limit
-
-
-def _measure(
-    points: Sequence[_Point], potassium: Sequence[LabResult], results: Sequence[LabResult], policy: Policy
-) -> list[_Rise]:
+def _measure(points: Sequence[_Point], potassium: Sequence[LabResult], policy: Policy) -> list[_Rise]:
     """The 24 h and 48 h rise of the latest sodium (when its nadir is in range), 24 h first."""
     rules = policy.sodium.rise
     day, two_days = _lowest(points, _DAY, policy), _lowest(points, _TWO_DAYS, policy)
@@ -263,7 +271,7 @@ def _measure(
         limit24 = min(limit24, rules.limit_24h_after_first_day)
     measured = []
     for change, limit, window in ((day, limit24, 24), (two_days, rules.limit_48h, 48)):
-        if change.ref.value < rules.applies_below and not _hypertonic(change.ref, results, policy):
+        if change.ref.value < rules.applies_below and not change.ref.hypertonic:
             measured.append(
                 _Rise(change=change, limit=limit, window=window,
                       risk=tuple(risk) if window == 24 else (),
@@ -272,10 +280,8 @@ def _measure(
     return measured
 
 
-def _rise(
-    points: Sequence[_Point], potassium: Sequence[LabResult], results: Sequence[LabResult], policy: Policy
-) -> _Assessment | None:
-    for m in _measure(points, potassium, results, policy):
+def _rise(measured: Sequence[_Rise]) -> _Assessment | None:
+    for m in measured:
         if m.beyond > m.limit:
             c = m.change
             risk = f" (high risk: {m.risk_words})" if m.risk else ""
@@ -293,11 +299,8 @@ def _rise(
     return None
 
 
-def _projected(
-    points: Sequence[_Point], potassium: Sequence[LabResult], results: Sequence[LabResult], policy: Policy
-) -> _Assessment | None:
+def _projected(points: Sequence[_Point], measured: Sequence[_Rise], policy: Policy) -> _Assessment | None:
     rules = policy.sodium.rise
-    measured = _measure(points, potassium, results, policy)
     if any(m.beyond > m.limit for m in measured):
         return None  # already crossed: the rise finding speaks instead
     day = next((m for m in measured if m.window == 24), None)
@@ -305,8 +308,8 @@ def _projected(
         return None
     # A projection extrapolates one analyser's trend: a step between methods is no trend.
     current = points[-1]
-    same = [p for p in points if p.result.method is current.result.method]
-    change = _lowest(same, _DAY, policy) if current.result.method is not Method.UNKNOWN else None
+    same = [p for p in points if p.method is current.method]
+    change = _lowest(same, _DAY, policy) if current.method is not Method.UNKNOWN else None
     if change is None or change.ref.value >= rules.applies_below:
         return None
     after = [p for p in same if p.result.effective > change.ref.result.effective]
