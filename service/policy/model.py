@@ -18,6 +18,8 @@ from service.domain.insulin import InsulinCodes
 from service.domain.values import Analyte, Specimen
 
 __all__ = [
+    "AlertingPolicy",
+    "AnalyteSteps",
     "CrisisRate",
     "Derived",
     "EscalationPolicy",
@@ -25,6 +27,7 @@ __all__ = [
     "InsulinPotassium",
     "LevelLimit",
     "Policy",
+    "RateSteps",
     "SodiumFall",
     "SodiumPolicy",
     "SodiumRise",
@@ -146,6 +149,36 @@ class EscalationPolicy(_Section):
     unacknowledged_minutes: Positive
 
 
+class AnalyteSteps(_Section):
+    """A worsening step per analyte, in canonical units (mmol/L; osmolality mOsm/kg)."""
+
+    sodium: Positive
+    potassium: Positive
+    glucose: Positive
+    osmolality: Positive
+
+
+class RateSteps(_Section):
+    """A worsening step for the rate rules, in canonical units per hour."""
+
+    glucose: Positive
+    osmolality: Positive
+
+
+class AlertingPolicy(_Section):
+    """When a new Flag version pages the responder topic: a worsening of its rule's measure by at least
+    one step since the last page (service/domain/alerting.py says which number each rule is measured by)."""
+
+    worsening_step: AnalyteSteps
+    worsening_step_per_hour: RateSteps
+
+    def step(self, analyte: Analyte, *, per_hour: bool) -> float | None:
+        """The step for this analyte's measure; None when the policy sets none (then every version pages)."""
+        steps: BaseModel = self.worsening_step_per_hour if per_hour else self.worsening_step
+        value = getattr(steps, analyte.value, None)
+        return float(value) if isinstance(value, (int, float)) else None
+
+
 class InsulinMedication(_Section):
     """Which medication codings count as insulin: ATC prefixes and single "system|code" entries."""
 
@@ -167,6 +200,7 @@ class Policy(_Section):
     insulin_potassium: InsulinPotassium
     insulin: InsulinMedication
     escalation: EscalationPolicy
+    alerting: AlertingPolicy
 
     @model_validator(mode="after")
     def _check(self) -> Policy:
