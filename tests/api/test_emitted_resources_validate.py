@@ -42,11 +42,12 @@ def test_search_history_and_read_validate(client: TestClient) -> None:
     valid(client.get("/fhir/Observation?patient=Patient/p1").json())
 
 
-def test_capability_statement_advertises_both_subscription_topics(client: TestClient) -> None:
+def test_capability_statement_advertises_every_subscription_topic(client: TestClient) -> None:
     body = client.get("/fhir/metadata").json()
     sub = next(r for r in body["rest"][0]["resource"] if r["type"] == "Subscription")
     topics = {e["valueCanonical"] for e in sub["extension"]}
     assert topics == {"https://lytestream.example/fhir/SubscriptionTopic/flag-changed",
+                      "https://lytestream.example/fhir/SubscriptionTopic/flag-alert",
                       "https://lytestream.example/fhir/SubscriptionTopic/flag-escalated"}
 
 
