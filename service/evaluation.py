@@ -91,18 +91,17 @@ class Evaluator:
         return paging
 
     def escalate(self, db: Database, now: datetime) -> int:
-        """Escalate each active, unacknowledged Flag of an escalated priority once per interval."""
-        rules = self.policy.escalation
-        interval = timedelta(minutes=rules.unacknowledged_minutes)
+        """Escalate each active Flag of an escalated priority that no acknowledgement covers, once per
+        interval of its priority."""
+        after = {p.value: timedelta(minutes=m) for p, m in self.policy.escalation.after_minutes.items()}
         with db.session() as session:
-            due = due_escalations(session=session, priorities=[p.value for p in rules.priorities],
-                                  interval=interval, now=now)
+            due = due_escalations(session=session, after=after, now=now)
         sent = 0
         for item in due:
             with db.session(write=True) as session:
                 db.lock_patients(session, [item.patient_key])
-                if not claim_escalation(session=session, due=item, now=now):
-                    continue  # another replica took this round
+                if not claim_escalation(session=session, due=item, after=after, now=now):
+                    continue  # another replica took this round, or the Flag changed since it was found
                 flag = flag_version(session=session, flag_id=item.flag_id, version=item.version_id)
                 if flag is not None:
                     sent += enqueue_events(session=session, topic=FLAG_ESCALATED, now=now,

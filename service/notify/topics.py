@@ -88,8 +88,9 @@ TOPICS: Mapping[str, Topic] = {
               "rule's measure worse by at least the policy step since the last version on this topic, "
               "closed or withdrawn.", _FLAG_FILTERS),
         Topic(FLAG_ESCALATED, "Flag escalated",
-              "A Flag of an escalated priority left unacknowledged past the policy interval; one event "
-              "per interval until it is acknowledged or closed.", _FLAG_FILTERS),
+              "A Flag of an escalated priority left unacknowledged past the policy interval for its "
+              "priority; one event per interval until it is acknowledged or closed. An acknowledgement "
+              "made before a rise in priority no longer covers it.", _FLAG_FILTERS),
     )
 }
 

@@ -143,10 +143,10 @@ class Derived(_Section):
 
 
 class EscalationPolicy(_Section):
-    """Which unacknowledged Flags are escalated, and how often."""
+    """Which unacknowledged Flags are escalated, and how often: minutes per priority (a priority not
+    listed is never escalated)."""
 
-    priorities: Annotated[tuple[Priority, ...], Field(min_length=1)]
-    unacknowledged_minutes: Positive
+    after_minutes: Annotated[dict[Priority, Positive], Field(min_length=1)]
 
 
 class AnalyteSteps(_Section):
