@@ -80,7 +80,8 @@ TOPICS: Mapping[str, Topic] = {
     t.url: t
     for t in (
         Topic(FLAG_CHANGED, "Flag changed",
-              "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn.",
+              "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn (for "
+              "integrations that keep a copy; responders subscribe to flag-alert).",
               _FLAG_FILTERS),
         # The one for responders: a version that changes nothing they must act on is not sent here.
         Topic(FLAG_ALERT, "Flag alert",
