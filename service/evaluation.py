@@ -64,8 +64,9 @@ class Evaluator:
         enqueue_events(session=session, topic=FLAG_CHANGED, now=now,
                        flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in written])
         paging = self._pages(session, written, now)
-        enqueue_events(session=session, topic=FLAG_ALERT, now=now,
-                       flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in paging])
+        if paging:  # most new versions page nobody: leave the subscription rows unlocked then
+            enqueue_events(session=session, topic=FLAG_ALERT, now=now,
+                           flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in paging])
         log.info("flags changed: %s; %d paged", ", ".join(sorted({w.kind for w in written})), len(paging))
         return written
 
