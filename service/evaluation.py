@@ -6,12 +6,14 @@ change a flag (a potassium recheck falls due, an episode ages out of its window)
 from __future__ import annotations
 
 import logging
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from datetime import datetime, timedelta
 
+import orjson
 from sqlmodel import Session
 
 from service.db.acks import claim_escalation, due_escalations
+from service.db.alerts import paged_of, record_page
 from service.db.engine import Database
 from service.db.flags import (
     FlagWrite,
@@ -22,10 +24,12 @@ from service.db.flags import (
 )
 from service.db.subscriptions import enqueue_events, flag_version
 from service.db.timeline import load_timelines
+from service.domain.alerting import Change, Paged, measure_of, page_reason
+from service.domain.findings import Priority
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
 from service.notify.bundles import interaction_for
-from service.notify.topics import FLAG_CHANGED, FLAG_ESCALATED
+from service.notify.topics import FLAG_ALERT, FLAG_CHANGED, FLAG_ESCALATED
 from service.policy import Policy, policy_hash
 
 __all__ = ["Evaluator"]
@@ -55,25 +59,50 @@ class Evaluator:
         subject_of = subjects(session=session, patient_keys=keys)
         written = write_changes(session=session, changes=changes, subject_of=subject_of,
                                 policy_hash=self.policy_hash, now=now)
-        # The outbox rows commit with the Flag versions they announce.
+        # The outbox rows commit with the Flag versions they announce: every version for integrations,
+        # and those a responder must act on for the responder topic.
         enqueue_events(session=session, topic=FLAG_CHANGED, now=now,
                        flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in written])
-        log.info("flags changed: %s", ", ".join(sorted({w.kind for w in written})))
+        paging = self._pages(session, written, now)
+        if paging:  # most new versions page nobody: leave the subscription rows unlocked then
+            enqueue_events(session=session, topic=FLAG_ALERT, now=now,
+                           flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in paging])
+        log.info("flags changed: %s; %d paged", ", ".join(sorted({w.kind for w in written})), len(paging))
         return written
 
+    def _pages(self, session: Session, written: Sequence[FlagWrite], now: datetime) -> list[FlagWrite]:
+        """The versions that page the responder topic, each judged against the last page of its Flag;
+        what each page carried is recorded on the flag row."""
+        last: dict[str, Paged] = {}
+        paging: list[FlagWrite] = []
+        for w in written:
+            row = w.row
+            previous = last.get(w.id) or paged_of(row)
+            priority, numbers = Priority(row.priority), orjson.loads(row.numbers)
+            kind: Change = w.kind  # type: ignore[assignment]  # the writer's kinds are exactly Change
+            reason = page_reason(change=kind, rule=row.rule, priority=priority, numbers=numbers,
+                                 last=previous, steps=self.policy.alerting)
+            if reason is None:
+                continue
+            sent = Paged(priority, measure_of(row.rule, numbers))
+            record_page(session=session, flag_id=w.id, paged=sent, reopens_escalation=reason.reopens_escalation,
+                        now=now)
+            last[w.id] = sent
+            paging.append(w)
+        return paging
+
     def escalate(self, db: Database, now: datetime) -> int:
-        """Escalate each active, unacknowledged Flag of an escalated priority once per interval."""
-        rules = self.policy.escalation
-        interval = timedelta(minutes=rules.unacknowledged_minutes)
+        """Escalate each active Flag of an escalated priority that no acknowledgement covers, once per
+        interval of its priority."""
+        after = {p.value: timedelta(minutes=m) for p, m in self.policy.escalation.after_minutes.items()}
         with db.session() as session:
-            due = due_escalations(session=session, priorities=[p.value for p in rules.priorities],
-                                  interval=interval, now=now)
+            due = due_escalations(session=session, after=after, now=now)
         sent = 0
         for item in due:
             with db.session(write=True) as session:
                 db.lock_patients(session, [item.patient_key])
-                if not claim_escalation(session=session, due=item, now=now):
-                    continue  # another replica took this round
+                if not claim_escalation(session=session, due=item, after=after, now=now):
+                    continue  # another replica took this round, or the Flag changed since it was found
                 flag = flag_version(session=session, flag_id=item.flag_id, version=item.version_id)
                 if flag is not None:
                     sent += enqueue_events(session=session, topic=FLAG_ESCALATED, now=now,

@@ -39,7 +39,8 @@ def queue_heartbeats(ctx: AppContext) -> int:
 
 
 def escalate_flags(ctx: AppContext) -> int:
-    """Announce unacknowledged high-priority Flags on the escalation topic, once per interval."""
+    """Announce unacknowledged Flags of the escalated priorities on the escalation topic, once per
+    interval of their priority."""
     return ctx.evaluator.escalate(ctx.db, ctx.clock.now())
 
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import uuid
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any, cast
@@ -41,34 +41,58 @@ def first_acks(*, session: Session, flag_ids: Sequence[str]) -> dict[str, dateti
 @dataclass(frozen=True)
 class DueEscalation:
     flag_id: str
-    round: int
+    round: int  # this Flag's escalations so far + 1: the unique key that lets one replica claim it
     patient_key: str
     version_id: int
+    priority_since: datetime
 
 
-def due_escalations(*, session: Session, priorities: Sequence[str], interval: timedelta,
-                    now: datetime) -> list[DueEscalation]:
-    """Active, unacknowledged Flags of these priorities whose next escalation round has come.
+def due_escalations(*, session: Session, after: Mapping[str, timedelta], now: datetime,
+                    flag_ids: Sequence[str] | None = None) -> list[DueEscalation]:
+    """Active Flags of the priorities in ``after`` that no acknowledgement covers and whose escalation
+    has come round (``after`` maps a priority to its interval).
 
-    Round n falls due n x interval after the flag was raised; only the newest due round is returned, so a
-    service that was down does not send a burst of stale rounds.
+    An acknowledgement covers a Flag when made at or after ``priority_since`` (the Flag was raised, or
+    paged for a priority rise, then). Escalation n falls due n x interval after ``priority_since``; a
+    Flag is due when no escalation has been made since the newest due time, so a service that was down
+    sends one escalation, not a burst of stale ones, and a Flag whose priority fell keeps its rhythm
+    from its last escalation.
     """
-    acked = select(_ACK.c.flag_id).distinct()
-    rows = session.execute(select(_FLAG.c.id, _FLAG.c.patient_key, _FLAG.c.version_id, _FLAG.c.raised_at)
-                           .where(_FLAG.c.status == "active", _FLAG.c.priority.in_(list(priorities)),
-                                  _FLAG.c.id.not_in(acked))).all()
+    covered = select(_ACK.c.id).where(_ACK.c.flag_id == _FLAG.c.id,
+                                      _ACK.c.acknowledged_at >= _FLAG.c.priority_since).exists()
+    query = (select(_FLAG.c.id, _FLAG.c.patient_key, _FLAG.c.version_id, _FLAG.c.priority,
+                    _FLAG.c.priority_since)
+             .where(_FLAG.c.status == "active", _FLAG.c.priority.in_(list(after)), ~covered))
+    if flag_ids is not None:
+        query = query.where(_FLAG.c.id.in_(list(flag_ids)))
+    rows = session.execute(query).all()
+    made: dict[str, list[tuple[int, datetime]]] = {}
+    for fid, rnd, at in session.execute(select(_ESC.c.flag_id, _ESC.c.round, _ESC.c.escalated_at)
+                                        .where(_ESC.c.flag_id.in_([r.id for r in rows]))):
+        made.setdefault(fid, []).append((rnd, at))
     due: list[DueEscalation] = []
-    done = {(fid, rnd) for fid, rnd in session.execute(
-        select(_ESC.c.flag_id, _ESC.c.round).where(_ESC.c.flag_id.in_([r.id for r in rows])))}
     for r in rows:
-        rounds = int((now - r.raised_at) / interval)
-        if rounds >= 1 and (r.id, rounds) not in done:
-            due.append(DueEscalation(r.id, rounds, r.patient_key, r.version_id))
+        interval = after[r.priority]
+        rounds = int((now - r.priority_since) / interval)
+        if rounds < 1:
+            continue
+        newest_due = r.priority_since + rounds * interval
+        mine = made.get(r.id, [])
+        if any(at >= newest_due for _, at in mine):
+            continue  # already escalated for this time
+        due.append(DueEscalation(r.id, max((rnd for rnd, _ in mine), default=0) + 1, r.patient_key,
+                                 r.version_id, r.priority_since))
     return due
 
 
-def claim_escalation(*, session: Session, due: DueEscalation, now: datetime) -> bool:
-    """Record the round; False when another replica already did (the unique key decides)."""
+def claim_escalation(*, session: Session, due: DueEscalation, after: Mapping[str, timedelta],
+                     now: datetime) -> bool:
+    """Record the escalation; False when it is no longer due (acknowledged, closed, changed since it
+    was found) or another replica already made it (the unique (flag, round) key decides).
+    Call under the patient's lock."""
+    still = due_escalations(session=session, after=after, now=now, flag_ids=[due.flag_id])
+    if still != [due]:
+        return False
     dialect = session.get_bind().dialect.name
     stmt = (pg_insert if dialect == "postgresql" else sqlite_insert)(_ESC).values(
         id=str(uuid.uuid4()), flag_id=due.flag_id, round=due.round, escalated_at=now

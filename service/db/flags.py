@@ -59,12 +59,13 @@ def subjects(*, session: Session, patient_keys: Iterable[str]) -> dict[str, dict
 
 
 class FlagWrite:
-    """One written flag version (for the response, notifications and tests)."""
+    """One written flag version (for the response, notifications and tests). ``row`` is the flag row
+    as this version left it (rule, priority, numbers: what deciding a page needs)."""
 
-    __slots__ = ("flag", "id", "kind", "version_id")
+    __slots__ = ("flag", "id", "kind", "row", "version_id")
 
-    def __init__(self, kind: str, id: str, version_id: int, flag: dict[str, Any]) -> None:
-        self.kind, self.id, self.version_id, self.flag = kind, id, version_id, flag
+    def __init__(self, kind: str, id: str, version_id: int, flag: dict[str, Any], row: Any = None) -> None:
+        self.kind, self.id, self.version_id, self.flag, self.row = kind, id, version_id, flag, row
 
 
 def write_changes(
@@ -95,10 +96,11 @@ def write_changes(
             if row is None:
                 rid, version = str(uuid.uuid4()), 1
                 session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, raised_at=now,
-                                                     **values))
+                                                     priority_since=now, **values))
             else:
                 rid, version = row.id, row.version_id + 1
-                raised = {"raised_at": now} if prior is None else {}  # a recurring episode is raised anew
+                # A recurring episode is raised anew: its priority, too, begins now.
+                raised = {"raised_at": now, "priority_since": now} if prior is None else {}
                 session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(
                     version_id=version, last_updated=now, **raised, **values))
             kind = "create" if row is None else ("reactivate" if prior is None else "update")
@@ -114,7 +116,7 @@ def write_changes(
         flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
-        written.append(FlagWrite(kind, rid, version, flag))
+        written.append(FlagWrite(kind, rid, version, flag, current))
     return written
 
 

@@ -162,6 +162,13 @@ class FlagRecord(SQLModel, table=True):
     raised_at: datetime = _utc(nullable=False)  # wall-clock time this episode's flag was (re)raised
     version_id: int = 1
     last_updated: datetime = _utc(nullable=False)
+    # When the priority responders were last paged for began (raised, or a paged rise): an
+    # acknowledgement covers the Flag only if made at or after it.
+    priority_since: datetime = _utc(nullable=False)
+    # What the responder topic (flag-alert) last carried, so every replica and a restart judge the next
+    # version against the same page. None: nothing recorded (then the next version pages).
+    alerted_priority: str | None = None
+    alerted_measure: float | None = None
 
 
 class AuditRecord(SQLModel, table=True):

@@ -97,7 +97,9 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                     {
                         "type": "Subscription",
                         "documentation": "Topic-based (Subscriptions R5 Backport on R4): rest-hook, id-only by "
-                                         "default, R4 Parameters or R4B SubscriptionStatus notifications.",
+                                         "default, R4 Parameters or R4B SubscriptionStatus notifications. "
+                                         + " ".join(f"Topic {t.url}: {t.description} Filters: "
+                                                    f"{', '.join(sorted(t.filters))}." for t in TOPICS.values()),
                         "extension": [
                             {"url": "http://hl7.org/fhir/uv/subscriptions-backport/StructureDefinition/"
                                     "capabilitystatement-subscriptiontopic-canonical", "valueCanonical": topic}

@@ -26,6 +26,7 @@ __all__ = [
     "BACKPORT_SD",
     "CONTENT_CODES",
     "DEFAULT_CONTENT",
+    "FLAG_ALERT",
     "FLAG_CHANGED",
     "FLAG_ESCALATED",
     "FORM_R4",
@@ -48,6 +49,7 @@ CHANNEL_TYPE_URL = f"{BACKPORT_SD}/backport-channel-type"
 
 FLAG_CHANGED = f"{CANONICAL_BASE}/SubscriptionTopic/flag-changed"
 FLAG_ESCALATED = f"{CANONICAL_BASE}/SubscriptionTopic/flag-escalated"
+FLAG_ALERT = f"{CANONICAL_BASE}/SubscriptionTopic/flag-alert"
 
 FORM_R4 = "r4"  # entry[0] is a Parameters (backport-subscription-status-r4)
 FORM_R4B = "r4b"  # entry[0] is a SubscriptionStatus (backport-subscription-notification)
@@ -78,11 +80,18 @@ TOPICS: Mapping[str, Topic] = {
     t.url: t
     for t in (
         Topic(FLAG_CHANGED, "Flag changed",
-              "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn.",
+              "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn (for "
+              "integrations that keep a copy; responders subscribe to flag-alert).",
               _FLAG_FILTERS),
+        # The one for responders: a version that changes nothing they must act on is not sent here.
+        Topic(FLAG_ALERT, "Flag alert",
+              "The Flag versions a responder must act on: raised or re-raised, a rise in priority, the "
+              "rule's measure worse by at least the policy step since the last version on this topic, "
+              "closed or withdrawn.", _FLAG_FILTERS),
         Topic(FLAG_ESCALATED, "Flag escalated",
-              "A Flag of an escalated priority left unacknowledged past the policy interval; one event "
-              "per interval until it is acknowledged or closed.", _FLAG_FILTERS),
+              "A Flag of an escalated priority left unacknowledged past the policy interval for its "
+              "priority; one event per interval until it is acknowledged or closed. An acknowledgement "
+              "made before a rise in priority no longer covers it.", _FLAG_FILTERS),
     )
 }
 

@@ -21,6 +21,8 @@ from service.domain.units import UnitNotAccepted, to_canonical
 from service.domain.values import Analyte, Specimen
 
 __all__ = [
+    "AlertingPolicy",
+    "AnalyteSteps",
     "CrisisRate",
     "Artefacts",
     "CrisisSodiumFall",
@@ -31,6 +33,7 @@ __all__ = [
     "InsulinPotassium",
     "LevelLimit",
     "Policy",
+    "RateSteps",
     "SodiumFall",
     "SodiumPolicy",
     "SodiumRise",
@@ -249,10 +252,40 @@ class Artefacts(_Section):
 
 
 class EscalationPolicy(_Section):
-    """Which unacknowledged Flags are escalated, and how often."""
+    """Which unacknowledged Flags are escalated, and how often: minutes per priority (a priority not
+    listed is never escalated)."""
 
-    priorities: Annotated[tuple[Priority, ...], Field(min_length=1)]
-    unacknowledged_minutes: Positive
+    after_minutes: Annotated[dict[Priority, Positive], Field(min_length=1)]
+
+
+class AnalyteSteps(_Section):
+    """A worsening step per analyte, in canonical units (mmol/L; osmolality mOsm/kg)."""
+
+    sodium: Positive
+    potassium: Positive
+    glucose: Positive
+    osmolality: Positive
+
+
+class RateSteps(_Section):
+    """A worsening step for the rate rules, in canonical units per hour."""
+
+    glucose: Positive
+    osmolality: Positive
+
+
+class AlertingPolicy(_Section):
+    """When a new Flag version pages the responder topic: a worsening of its rule's measure by at least
+    one step since the last page (service/domain/alerting.py says which number each rule is measured by)."""
+
+    worsening_step: AnalyteSteps
+    worsening_step_per_hour: RateSteps
+
+    def step(self, analyte: Analyte, *, per_hour: bool) -> float | None:
+        """The step for this analyte's measure; None when the policy sets none (then every version pages)."""
+        steps: BaseModel = self.worsening_step_per_hour if per_hour else self.worsening_step
+        value = getattr(steps, analyte.value, None)
+        return float(value) if isinstance(value, (int, float)) else None
 
 
 class InsulinMedication(_Section):
@@ -277,6 +310,7 @@ class Policy(_Section):
     insulin_potassium: InsulinPotassium
     insulin: InsulinMedication
     escalation: EscalationPolicy
+    alerting: AlertingPolicy
 
     @model_validator(mode="after")
     def _check(self) -> Policy:

@@ -66,9 +66,9 @@ def test_acknowledged_flag_is_no_longer_due_for_escalation(
 ) -> None:
     flag_id = raise_flag(client)
     later = clock.now() + timedelta(minutes=16)
+    after = {"high": timedelta(minutes=15)}
     with context.db.session() as session:
-        assert [d.flag_id for d in due_escalations(session=session, priorities=["high"],
-                                                   interval=timedelta(minutes=15), now=later)] == [flag_id]
+        assert [d.flag_id for d in due_escalations(session=session, after=after, now=later)] == [flag_id]
     ack(client, flag_id)
     with context.db.session() as session:
-        assert due_escalations(session=session, priorities=["high"], interval=timedelta(minutes=15), now=later) == []
+        assert due_escalations(session=session, after=after, now=later) == []

@@ -42,12 +42,21 @@ def test_search_history_and_read_validate(client: TestClient) -> None:
     valid(client.get("/fhir/Observation?patient=Patient/p1").json())
 
 
-def test_capability_statement_advertises_both_subscription_topics(client: TestClient) -> None:
+def test_capability_statement_advertises_every_subscription_topic(client: TestClient) -> None:
     body = client.get("/fhir/metadata").json()
     sub = next(r for r in body["rest"][0]["resource"] if r["type"] == "Subscription")
     topics = {e["valueCanonical"] for e in sub["extension"]}
     assert topics == {"https://lytestream.example/fhir/SubscriptionTopic/flag-changed",
+                      "https://lytestream.example/fhir/SubscriptionTopic/flag-alert",
                       "https://lytestream.example/fhir/SubscriptionTopic/flag-escalated"}
+
+
+def test_capability_statement_says_what_the_responder_topic_carries(client: TestClient) -> None:
+    body = client.get("/fhir/metadata").json()
+    sub = next(r for r in body["rest"][0]["resource"] if r["type"] == "Subscription")
+    assert "Topic https://lytestream.example/fhir/SubscriptionTopic/flag-alert: The Flag versions a responder " \
+           "must act on" in sub["documentation"]
+    assert "Filters: code, patient, priority." in sub["documentation"]
 
 
 def test_served_subscription_validates(client: TestClient) -> None:

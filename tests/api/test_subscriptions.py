@@ -20,6 +20,7 @@ from fhir.resources.R4B import get_fhir_model_class
 
 from service.api.context import AppContext
 from service.clock import FixedClock
+from service.domain.findings import Priority
 from service.notify.topics import FLAG_CHANGED, FLAG_ESCALATED
 from tests.factories import HEADERS, bundle, dumps, observation
 
@@ -206,7 +207,7 @@ def test_unacknowledged_high_flag_is_escalated_once_per_interval(
     subscribe(client, topic=FLAG_ESCALATED)
     context.dispatcher.run_once()
     raise_flag(client)
-    interval = timedelta(minutes=context.policy.escalation.unacknowledged_minutes)
+    interval = timedelta(minutes=context.policy.escalation.after_minutes[Priority.HIGH])
     assert context.evaluator.escalate(context.db, clock.now()) == 0
     clock.advance(interval + timedelta(seconds=1))
     assert context.evaluator.escalate(context.db, clock.now()) == 1

@@ -12,6 +12,7 @@ from hypothesis import strategies as st
 from service.errors import Issue
 from service.fhir.flag_render import RULE_SYSTEM, FlagView, render_flag
 from service.notify.topics import (
+    FLAG_ALERT,
     FLAG_CHANGED,
     FLAG_ESCALATED,
     FORM_R4,
@@ -303,9 +304,16 @@ def test_filters_are_anded_across_extensions_and_within_one() -> None:
 
 
 def test_topic_canonicals_live_under_our_base() -> None:
-    assert set(TOPICS) == {FLAG_CHANGED, FLAG_ESCALATED}
+    assert set(TOPICS) == {FLAG_CHANGED, FLAG_ALERT, FLAG_ESCALATED}
     assert FLAG_CHANGED == "https://lytestream.example/fhir/SubscriptionTopic/flag-changed"
+    assert FLAG_ALERT == "https://lytestream.example/fhir/SubscriptionTopic/flag-alert"
     assert all(t.filters == {"patient", "priority", "code"} for t in TOPICS.values())
+
+
+def test_responder_topic_accepted_with_the_same_filters() -> None:
+    spec = parse_subscription(subscription(criteria=FLAG_ALERT))  # filtered by patient and priority
+    assert isinstance(spec, SubscriptionSpec) and spec.topic == FLAG_ALERT
+    assert [f.name for f in spec.filters] == ["patient", "priority"]
 
 
 def test_escalated_topic_accepted_and_fired() -> None:
