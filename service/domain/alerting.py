@@ -67,6 +67,7 @@ MEASURES: Mapping[Rule, Measure] = MappingProxyType({
     # The fall from the 24 h peak (mmol/L): always present, unlike the rate, which only the
     # sustained-rate form of the finding carries.
     Rule.SODIUM_FALL_TOO_FAST: Measure("fall", Worse.HIGHER, Analyte.SODIUM),
+    Rule.SODIUM_FALL_IN_CRISIS: Measure("fall", Worse.HIGHER, Analyte.SODIUM),
     Rule.OSMOLALITY_FALL_TOO_FAST: Measure("rate_per_hour", Worse.HIGHER, Analyte.OSMOLALITY, per_hour=True),
     Rule.GLUCOSE_FALL_TOO_FAST: Measure("rate_per_hour", Worse.HIGHER, Analyte.GLUCOSE, per_hour=True),
     Rule.HYPOKALEMIA_ON_INSULIN: Measure("potassium", Worse.LOWER, Analyte.POTASSIUM),

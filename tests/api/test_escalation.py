@@ -4,9 +4,8 @@ covers the priority it saw: a later rise in priority re-opens escalation.
 
 Clinical values, with their sources:
 - Sodium at or below 120 mmol/L is critical low, high priority (RCPath G158 2017).
-- Potassium below 3.5 mmol/L in two results at least 1 h apart during IV insulin raises
-  hypokalemia-on-insulin (Umpierrez 2024, from memory; gap common practice, no source) at medium
-  priority; below 3.0 makes it high (common practice, no source).
+- Potassium below 3.5 mmol/L during IV insulin raises hypokalemia-on-insulin at once at medium
+  priority (Umpierrez 2024, from memory); below 3.0 makes it high (common practice, no source).
 """
 
 from __future__ import annotations
@@ -52,9 +51,8 @@ def only_flag(client: TestClient) -> dict[str, Any]:
 
 
 def raise_medium_hypokalaemia(client: TestClient) -> str:
-    """K 3.2 at 11:00 and 3.05 at 12:00 during an IV insulin infusion: a medium Flag at 12:00."""
-    send(client, insulin("m1", start="2026-03-02T10:00:00+00:00"), potassium("k1", 3.2, "11:00"),
-         potassium("k2", 3.05, "12:00"))
+    """K 3.4 at 11:30 during an IV insulin infusion: a medium Flag at 12:00 (not yet 2 h without a recheck)."""
+    send(client, insulin("m1", start="2026-03-02T10:00:00+00:00"), potassium("k1", 3.4, "11:30"))
     flag = only_flag(client)
     assert flag["extension"][0]["valueCodeableConcept"]["coding"][0]["code"] == "PM"
     return str(flag["id"])

@@ -6,9 +6,9 @@ Clinical values, with their sources:
 - Sodium at or below 120 mmol/L is critical low (RCPath G158 2017); 118, 117.5 … 116 are all below it.
 - The default worsening step for sodium is 2 mmol/L and for potassium 0.3 mmol/L (site policy:
   common practice, no source).
-- Potassium below 3.5 mmol/L in two results at least 1 h apart during IV insulin raises
-  hypokalemia-on-insulin (Umpierrez 2024, from memory; gap common practice, no source) at medium
-  priority; below 3.0 makes it high (common practice, no source).
+- Potassium below 3.5 mmol/L during IV insulin raises hypokalemia-on-insulin at once at medium
+  priority (Umpierrez 2024, from memory); a second low at least 1 h later makes it high (common
+  practice, no source).
 """
 
 from __future__ import annotations
@@ -93,10 +93,10 @@ def test_creeping_sub_step_worsening_pages_once_it_sums_to_a_step(client: TestCl
 
 def test_a_priority_rise_pages(client: TestClient, context: AppContext, clock: FixedClock) -> None:
     alert = subscribe(client, FLAG_ALERT)
-    send(client, insulin("m1", start="2026-03-02T10:00:00+00:00"), potassium("k1", 3.2, "11:00"),
-         potassium("k2", 3.05, "12:00"))  # medium
+    send(client, insulin("m1", start="2026-03-02T10:00:00+00:00"), potassium("k1", 3.4, "11:30"))  # medium
     clock.advance(timedelta(minutes=30))
-    send(client, potassium("k3", 2.95, "12:30"))  # high; 0.1 lower, less than the 0.3 step
+    # a second low an hour later: high; 0.05 lower, less than the 0.3 step
+    send(client, potassium("k2", 3.35, "12:30"))
     (flag,) = client.get("/fhir/Flag?code=hypokalemia-on-insulin").json()["entry"]
     assert flag["resource"]["meta"]["versionId"] == "2"
     assert versions(events(context, alert)) == [1, 2]

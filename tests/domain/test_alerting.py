@@ -48,10 +48,13 @@ def findings_by_rule() -> dict[Rule, Finding]:
         ([glu(2.2, 0)], []), ([glu(30, 0)], []),  # RCPath G158 2017: glucose <=2.5 / >=25
         ([osm(240, 0)], []), ([osm(340, 0)], []),  # Kost table <=250; Thomas 2003 >330
         ([na(112, 0), na(123, 20)], []),  # rise 11 in 20 h > 10 (Spasovski 2014, from memory)
-        ([na(115, 0), na(121, 6)], []),  # 1 mmol/L/h over 6 h projects past 10 in 24 h (common practice)
+        ([na(115, 0), na(118, 3), na(121, 6)], []),  # 1 mmol/L/h over 6 h projects past 10 in 24 h (common practice)
         ([na(158, 0), na(147, 20)], []),  # fall 11 in 20 h > 10 (Adrogue & Madias 2000, from memory)
         ([osm(360, 0), osm(340, 2), glu(40, 0)], []),  # 10 mOsm/kg/h > 8 (JBDS 2023, Mustafa)
-        ([glu(40, 0), glu(28, 2)], []),  # 6 mmol/L/h > 5 (JBDS 2023, Mustafa)
+        ([glu(40, 0), glu(28, 2)], [insulin(-1)]),  # 6 mmol/L/h > 5 (JBDS 2023, Mustafa), during IV insulin
+        # corrected sodium 139.9 (Na 130, glucose 40; 2 Na + glucose = 300, a crisis: Umpierrez 2024) -> 128:
+        # a fall of 11.9 > 10 in 24 h (JBDS HHS, Mustafa 2023, from memory)
+        ([na(130, 0), glu(40, 0), na(128, 12), glu(12, 12)], []),
         ([k(3.3, 1), k(3.2, 2)], [insulin(0)]),  # two lows below 3.5 during IV insulin (Umpierrez 2024)
     ]
     out: dict[Rule, Finding] = {}

@@ -1,13 +1,13 @@
 """observation.quality: the sample-quality remark a lab sent (haemolysed, ...)
 
-Revision ID: 0002
+Revision ID: 0002_result_quality
 Revises: 0001
 Create Date: 2026-12-02
 """
 import sqlalchemy as sa
 from alembic import op
 
-revision = '0002'
+revision = '0002_result_quality'
 down_revision = '0001'
 branch_labels = None
 depends_on = None
