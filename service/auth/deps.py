@@ -43,6 +43,7 @@ __all__ = [
     "authenticated",
     "entry_allowed",
     "entry_interactions",
+    "update_refusal",
     "install_auth",
     "require",
 ]
@@ -226,6 +227,22 @@ def entry_allowed(principal: Principal, resource_type: str, method: str, *,
         return None
     scope = needed_scope(resource_type, needed)
     return Issue("forbidden", f"the token's scopes do not cover this entry; it needs {scope}", status=403)
+
+
+def update_refusal(principal: Principal, resource_type: str) -> Issue | None:
+    """None if ``principal`` may change held resources of this type; else the Issue for a create that would.
+
+    A POST keyed on a business identifier that is already held becomes a new version of that resource (a
+    correction, or ``entered-in-error`` withdrawing it): that is an update, whatever the HTTP method, so a
+    create-only token must not do it. Whether a create would change something is known only when it is
+    stored, so the ingestor reports this Issue then (an identical resend changes nothing and stays a 200).
+    """
+    if principal.allows(resource_type, "u"):
+        return None
+    scope = needed_scope(resource_type, frozenset("cu"))
+    return Issue("forbidden", f"this create would change a {resource_type} already held (a new version, or a "
+                 f"result that replaces another), which the token's scopes do not cover; it needs {scope}",
+                 status=403)
 
 
 def auth_outcome_response(exc: AuthFailure, *, realm: str = "lytestream") -> Response:
