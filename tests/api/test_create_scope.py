@@ -12,7 +12,7 @@ from fastapi.testclient import TestClient
 
 from service.api.context import AppContext
 from tests.conftest import authorised_client
-from tests.factories import HEADERS, bundle, dumps, insulin, observation
+from tests.factories import HEADERS, LAB, bundle, dumps, insulin, observation
 
 CREATE_ONLY = "system/Observation.c system/MedicationAdministration.c"
 POTASSIUM = "2823-3"
@@ -129,3 +129,37 @@ def test_transaction_with_an_entry_that_would_change_a_held_result_is_refused_wh
     assert r.json()["issue"][0]["expression"] == ["Bundle.entry[1]"]
     assert client.get("/fhir/Observation").json()["total"] == 1
     assert active_rules(client) == ["potassium-critical-high"]
+
+
+def test_create_only_token_gets_no_held_body_for_a_create_that_matched(
+        client: TestClient, context: AppContext) -> None:
+    client.post("/fhir/Observation", content=dumps(critical_potassium()), headers=HEADERS)
+    with authorised_client(context, scope=CREATE_ONLY, client="lab-feed") as feed:
+        r = feed.post("/fhir/Observation", content=dumps(observation("k1", code=POTASSIUM, value=4.0)),
+                      headers={**HEADERS, "prefer": "return=representation",
+                               "if-none-exist": f"identifier={LAB}|k1"})
+    assert r.status_code == 200
+    body = r.json()
+    assert body["resourceType"] == "OperationOutcome"
+    assert "6.9" not in r.text
+
+
+def test_create_only_token_gets_no_held_body_for_a_stale_create(client: TestClient, context: AppContext) -> None:
+    client.post("/fhir/Observation", content=dumps(critical_potassium()), headers=HEADERS)
+    with authorised_client(context, scope=CREATE_ONLY, client="lab-feed") as feed:
+        r = feed.post("/fhir/Observation", content=dumps(observation("k1", code=POTASSIUM, value=4.0,
+                                                                     status="preliminary")),
+                      headers={**HEADERS, "prefer": "return=representation"})
+    assert r.status_code == 200
+    assert r.json()["resourceType"] == "OperationOutcome"
+    assert "6.9" not in r.text
+
+
+def test_create_and_read_token_gets_the_held_body_for_a_create_that_matched(
+        client: TestClient, context: AppContext) -> None:
+    client.post("/fhir/Observation", content=dumps(critical_potassium()), headers=HEADERS)
+    with authorised_client(context, scope="system/Observation.cr", client="lab-feed") as feed:
+        r = feed.post("/fhir/Observation", content=dumps(observation("k1", code=POTASSIUM, value=4.0)),
+                      headers={**HEADERS, "prefer": "return=representation",
+                               "if-none-exist": f"identifier={LAB}|k1"})
+    assert r.json()["valueQuantity"]["value"] == 6.9

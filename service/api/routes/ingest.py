@@ -108,8 +108,10 @@ async def _write(request: Request, ctx: ContextDep, who: RequesterDep, caller: P
             return auth_outcome_response(forbidden(needed_scope(rtype, frozenset("cu"))),
                                          realm=ctx.settings.auth.realm)
         raise
-    if result.body is None and result.location and prefer_return(request, "representation") == "representation":
-        # Nothing new was written (a resend): answer with the version held.
+    if (result.body is None and result.location and caller.allows(rtype, "r")
+            and prefer_return(request, "representation") == "representation"):
+        # Nothing new was written (a resend, a stale version, a matched If-None-Exist): answer with the version
+        # held, to a caller who may read it. Anyone else gets the outcome: the held version is not theirs to see.
         rid, version = result.location.split("/")[1], result.version_id
         with ctx.db.session() as session:
             result.body = read_version(session=session, resource_type=rtype, rid=rid, version=version)
