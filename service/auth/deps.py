@@ -83,7 +83,7 @@ class Authenticator:
     def authenticate(self, authorization: str | None) -> Principal:
         """The caller named by an ``Authorization`` header value; :class:`AuthFailure` otherwise."""
         if self.settings.disabled:
-            return Principal(client_id="auth-disabled", grants=_EVERYTHING, kind="disabled")
+            return Principal(client_id="auth-disabled", grants=_EVERYTHING, kind="disabled", admin=True)
         token = _bearer(authorization)
         if token.startswith(TOKEN_PREFIX):
             if self.settings.mode == "jwt":

@@ -233,8 +233,9 @@ def _principal(claims: dict[str, Any]) -> Principal:
     client = next((c for c in candidates if isinstance(c, str) and c), None)
     if client is None:
         raise token_invalid("the token names no client (client_id or sub)")
-    return Principal(client_id=client, grants=parse_scopes(scope_string).grants, kind="jwt",
-                     subject=sub if sub != client else None)
+    parsed = parse_scopes(scope_string)
+    return Principal(client_id=client, grants=parsed.grants, kind="jwt", subject=sub if sub != client else None,
+                     admin=parsed.admin)
 
 
 def _is_number(value: object) -> TypeGuard[int | float]:

@@ -48,6 +48,11 @@ def test_scp_as_a_list_is_accepted_in_place_of_scope(verifier: JwtVerifier, make
                                                       Grant("Observation", frozenset("rs")))
 
 
+def test_the_admin_scope_in_a_jwt_names_an_admin(verifier: JwtVerifier, make_jwt: MakeJwt) -> None:
+    assert verifier.verify(make_jwt(scope="system/Subscription.rs lytestream/admin"), now=NOW).admin is True
+    assert verifier.verify(make_jwt(scope="system/*.cruds"), now=NOW).admin is False
+
+
 def test_a_token_without_scope_is_invalid(verifier: JwtVerifier, make_jwt: MakeJwt) -> None:
     assert refusal(verifier, make_jwt(scope=None)).description == "the token carries no scope claim"
 
