@@ -14,7 +14,7 @@ import logging
 import re
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from datetime import datetime, timedelta
 from typing import Annotated
 
@@ -38,6 +38,7 @@ __all__ = [
     "AuthFailure",
     "Authenticator",
     "CallerDep",
+    "OnRefused",
     "Principal",
     "auth_outcome_response",
     "authenticated",
@@ -256,18 +257,31 @@ def auth_outcome_response(exc: AuthFailure, *, realm: str = "lytestream") -> Res
     return response
 
 
-def install_auth(app: FastAPI, authenticator: Authenticator) -> None:
-    """Attach ``authenticator`` to ``app`` and answer :class:`AuthFailure` as FHIR."""
+OnRefused = Callable[[Request, AuthFailure], Awaitable[None]]
+
+
+def install_auth(app: FastAPI, authenticator: Authenticator, *, on_refused: OnRefused | None = None) -> None:
+    """Attach ``authenticator`` to ``app`` and answer :class:`AuthFailure` as FHIR.
+
+    ``on_refused`` records each refusal (the service audits and logs them, within limits); without it a
+    refusal is logged here. A failure to record never changes the answer.
+    """
     app.state.authenticator = authenticator
     realm = authenticator.settings.realm
 
     async def _refused(request: Request, exc: Exception) -> Response:
         if not isinstance(exc, AuthFailure):  # registered for AuthFailure only; keep the type checker honest
             raise exc
-        principal = getattr(request.state, "principal", None)
-        who = principal.client_id if isinstance(principal, Principal) else "-"
-        log.info("auth refused: status=%s error=%s client=%s reason=%s", exc.status, exc.error or "-", who,
-                 exc.description)
+        if on_refused is None:
+            principal = getattr(request.state, "principal", None)
+            who = principal.client_id if isinstance(principal, Principal) else "-"
+            log.warning("auth refused: status=%s error=%s client=%s reason=%s", exc.status, exc.error or "-", who,
+                        exc.description)
+        else:
+            try:
+                await on_refused(request, exc)
+            except Exception as failure:  # the refusal stands whatever became of its record
+                log.error("could not record an auth refusal: %s", type(failure).__name__)
         return auth_outcome_response(exc, realm=realm)
 
     app.add_exception_handler(AuthFailure, _refused)
