@@ -37,6 +37,9 @@ class Settings(BaseSettings):
     policy_profile: str | None = Field(default=None, description="policy profile, e.g. paediatric")
     scheduler: bool = Field(default=True, description="run the time-driven jobs in this process")
     auth: AuthSettings = Field(default_factory=AuthSettings, description="bearer tokens: minted, JWT or both")
+    api_docs: bool = Field(
+        default=False, description="serve /openapi.json and /docs without a token; for development, never in "
+                                   "production (they map every route for whoever asks)")
     refusal_audit_per_client: int = Field(
         default=20, gt=0, description="refused requests (401/403) audited one by one per client (or, unauthenticated, "
                                       "per address) per minute and process; the rest are counted")

@@ -69,7 +69,9 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
                 scheduler.shutdown(wait=True)
             authenticator.close()
 
-    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs", redoc_url=None, lifespan=lifespan)
+    docs = ctx.settings.api_docs  # off by default: the OpenAPI description answers without a token
+    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs" if docs else None, redoc_url=None,
+                  openapi_url="/openapi.json" if docs else None, lifespan=lifespan)
     app.state.ctx = ctx
     authenticator = Authenticator(ctx.settings.auth, db=ctx.db, clock=ctx.clock)
     install_auth(app, authenticator, on_refused=RefusalAudit(db=ctx.db, clock=ctx.clock,
