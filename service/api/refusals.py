@@ -33,12 +33,14 @@ from service.db.audit import record_audit
 from service.db.engine import Database
 from service.fhir.audit_render import AuditFacts, Requester
 
-__all__ = ["UNAUTHENTICATED", "Admission", "RefusalAudit", "RefusalLimiter"]
+__all__ = ["MAX_COUNTED_CALLERS", "UNAUTHENTICATED", "Admission", "RefusalAudit", "RefusalLimiter"]
 
 log = logging.getLogger("lytestream.auth")
 
 UNAUTHENTICATED = "(unauthenticated)"  # the agent of a 401: no token named a client (not a valid client name)
-_MAX_KEYS = 10_000  # distinct callers counted per window; beyond, they share one counter
+# Distinct callers counted one by one per window; beyond, they share one counter. This also bounds the count
+# AuditEvents a closed window writes (one per caller), so many addresses cannot get round the overall limit.
+MAX_COUNTED_CALLERS = 100
 CallerKey = tuple[str, str]  # ("client", client id) or ("address", network address)
 _OTHERS: CallerKey = ("others", "-")
 _MAX_PATH = 200
@@ -83,7 +85,7 @@ class RefusalLimiter:
                 self._admitted[key] = self._admitted.get(key, 0) + 1
                 self._total += 1
                 return Admission(True, False, closed_at, closed)
-            if key not in self._counted and len(self._counted) >= _MAX_KEYS:
+            if key not in self._counted and len(self._counted) >= MAX_COUNTED_CALLERS:
                 key = _OTHERS
             self._counted[key] = self._counted.get(key, 0) + 1
             return Admission(False, self._counted[key] == 1, closed_at, closed)
