@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 from fastapi import APIRouter, Depends, Request
@@ -21,6 +22,7 @@ from service.fhir.render import operation_outcome, response_bundle
 from service.ingest import EntryRequest, EntryResult
 
 router = APIRouter()
+log = logging.getLogger("lytestream.auth")
 
 _BUNDLE_TYPES = ("transaction", "batch")
 
@@ -105,6 +107,8 @@ async def _write(request: Request, ctx: ContextDep, who: RequesterDep, caller: P
     except RequestRejected as exc:
         if exc.status == 403 and all(i.code == "forbidden" for i in exc.issues if i.severity == "error"):
             # The ingestor refused (and audited) a create that would update: answer as any 403, with its challenge.
+            log.warning("auth refused: status=403 error=insufficient_scope client=%s interaction=create-as-update "
+                        "type=%s request=%s", who.client, rtype, who.request_id)
             return auth_outcome_response(forbidden(needed_scope(rtype, frozenset("cu"))),
                                          realm=ctx.settings.auth.realm)
         raise
