@@ -37,6 +37,14 @@ class Settings(BaseSettings):
     policy_profile: str | None = Field(default=None, description="policy profile, e.g. paediatric")
     scheduler: bool = Field(default=True, description="run the time-driven jobs in this process")
     auth: AuthSettings = Field(default_factory=AuthSettings, description="bearer tokens: minted, JWT or both")
+    api_docs: bool = Field(
+        default=False, description="serve /openapi.json and /docs without a token; for development, never in "
+                                   "production (they map every route for whoever asks)")
+    refusal_audit_per_client: int = Field(
+        default=20, gt=0, description="refused requests (401/403) audited one by one per client (or, unauthenticated, "
+                                      "per address) per minute and process; the rest are counted")
+    refusal_audit_overall: int = Field(
+        default=200, gt=0, description="refused requests audited one by one per minute and process, all clients")
     recheck_seconds: float = Field(default=60.0, gt=0, description="how often time-driven flags are rechecked")
     deliver_seconds: float = Field(default=2.0, gt=0, description="how often the outbox is drained")
     allow_http_endpoints: bool = Field(default=False, description="accept plain-http rest-hook endpoints")

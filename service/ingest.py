@@ -61,6 +61,8 @@ class EntryRequest:
     if_none_exist: str | None = None
     full_url: str | None = None
     refused: Issue | None = None  # the caller's scopes do not cover this entry
+    # The caller may create but not update: the Issue to report if this entry would change a held resource.
+    update_refused: Issue | None = None
 
 
 @dataclass
@@ -82,6 +84,7 @@ class _Prepared:
     insulin: IncomingInsulin | None = None
     reason: str = ""
     if_none_exist: bool = False
+    update_refused: Issue | None = None
 
 
 class Ingestor:
@@ -243,12 +246,13 @@ class Ingestor:
             obs = replace(obs, identifier=_check_identifier(e, obs.identifier, if_none_exist))
             aliases = patient_aliases(obs.subject, f"{e.root}.subject", identities)
             return _Prepared(Kind.OBSERVATION, warnings, aliases, observation=obs,
-                             if_none_exist=if_none_exist is not None)
+                             if_none_exist=if_none_exist is not None, update_refused=e.update_refused)
         ins = normalise_insulin(resource, self.insulin, e.root)
         assert ins is not None  # triage saw an insulin coding
         ins = replace(ins, identifier=_check_identifier(e, ins.identifier, if_none_exist))
         aliases = patient_aliases(ins.subject, f"{e.root}.subject", identities)
-        return _Prepared(Kind.INSULIN, warnings, aliases, insulin=ins, if_none_exist=if_none_exist is not None)
+        return _Prepared(Kind.INSULIN, warnings, aliases, insulin=ins, if_none_exist=if_none_exist is not None,
+                         update_refused=e.update_refused)
 
     # -- storing (inside the unit of work) -----------------------------------------------
 
@@ -283,6 +287,11 @@ class Ingestor:
             return request_id[0]
 
         written = apply_versions(session=session, pending=pending, now=now, request_id=make_request_id)
+        # Decided only now, against what is held: raising rolls back what apply_versions wrote.
+        refused = [p.update_refused for i, p in enumerate(prepared)
+                   if p.update_refused is not None and i in slot and _changes_held(written[slot[i]], p)]
+        if refused:
+            raise Invalid(refused)
 
         touched: set[str] = set()
         results: list[EntryResult] = []
@@ -304,6 +313,13 @@ class Ingestor:
         if touched and self.on_change is not None:
             self.on_change(session, touched, now)
         return results
+
+
+def _changes_held(w: Written, p: _Prepared) -> bool:
+    """Whether this write changes a resource already held: a new version, or a result that replaces another
+    (observation-replaces takes the named result out of the rules, whichever of the two arrives first)."""
+    replaces = p.observation is not None and p.observation.replaces is not None
+    return w.decision is Decision.UPDATE or (w.decision is Decision.CREATE and replaces)
 
 
 def _failed(issues: list[Issue]) -> EntryResult:

@@ -16,6 +16,7 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
+from service.api.refusals import RefusalAudit, RefusalLimiter
 from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
 from service.auth.deps import Authenticator, install_auth
 from service.clock import Clock, SystemClock
@@ -46,8 +47,9 @@ def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bo
                         on_change=evaluator)
     dispatcher = Dispatcher(db=db, settings=settings, clock=clock, client=http or httpx.Client(),
                             rng=random.Random())
+    refusals = RefusalLimiter(per_key=settings.refusal_audit_per_client, overall=settings.refusal_audit_overall)
     return AppContext(settings=settings, db=db, clock=clock, ingestor=ingestor, policy=policy,
-                      evaluator=evaluator, dispatcher=dispatcher)
+                      evaluator=evaluator, dispatcher=dispatcher, refusals=refusals)
 
 
 def app_from_environment() -> FastAPI:
@@ -67,10 +69,13 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
                 scheduler.shutdown(wait=True)
             authenticator.close()
 
-    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs", redoc_url=None, lifespan=lifespan)
+    docs = ctx.settings.api_docs  # off by default: the OpenAPI description answers without a token
+    app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs" if docs else None, redoc_url=None,
+                  openapi_url="/openapi.json" if docs else None, lifespan=lifespan)
     app.state.ctx = ctx
     authenticator = Authenticator(ctx.settings.auth, db=ctx.db, clock=ctx.clock)
-    install_auth(app, authenticator)
+    install_auth(app, authenticator, on_refused=RefusalAudit(db=ctx.db, clock=ctx.clock,
+                                                             base_url=ctx.settings.base_url, limiter=ctx.refusals))
     app.include_router(meta.router)
     app.include_router(summary.router)  # before read.router: /fhir/Flag/$summary is not a Flag id
     app.include_router(ingest.router)

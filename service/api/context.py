@@ -7,6 +7,7 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 
+from service.api.refusals import RefusalLimiter
 from service.clock import Clock
 from service.config import Settings
 from service.db.engine import Database
@@ -27,6 +28,7 @@ class AppContext:
     policy: Policy
     evaluator: Evaluator
     dispatcher: Dispatcher
+    refusals: RefusalLimiter  # one per process, shared by every app built on this context
 
 
 def _context(request: Request) -> AppContext:

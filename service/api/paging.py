@@ -57,14 +57,15 @@ def patient_alias(params: QueryParams) -> str | None:
 
 
 def page_bundle(*, rtype: str, params: QueryParams, page: Page, rows: Sequence[bytes], total: int,
-                settings: Settings, now: datetime, included: Sequence[bytes] = ()) -> dict[str, Any]:
+                settings: Settings, now: datetime, included: Sequence[bytes] = (),
+                outcome: Sequence[Issue] = ()) -> dict[str, Any]:
     base = settings.base_url
     query = [(k, v) for k, v in params.multi_items() if k != "_offset"]
     self_url = f"{base}/{rtype}?{urlencode([*query, ('_offset', str(page.offset))])}"
     next_url = (f"{base}/{rtype}?{urlencode([*query, ('_offset', str(page.offset + page.count))])}"
                 if page.offset + page.count < total else None)
     return searchset([orjson.loads(r) for r in rows], base=base, self_url=self_url, next_url=next_url,
-                     total=total, now=now, included=[orjson.loads(r) for r in included])
+                     total=total, now=now, included=[orjson.loads(r) for r in included], outcome=outcome)
 
 
 def _int(value: str | None, default: int, name: str) -> int:

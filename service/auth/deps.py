@@ -14,7 +14,7 @@ import logging
 import re
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from datetime import datetime, timedelta
 from typing import Annotated
 
@@ -38,11 +38,13 @@ __all__ = [
     "AuthFailure",
     "Authenticator",
     "CallerDep",
+    "OnRefused",
     "Principal",
     "auth_outcome_response",
     "authenticated",
     "entry_allowed",
     "entry_interactions",
+    "update_refusal",
     "install_auth",
     "require",
 ]
@@ -82,7 +84,7 @@ class Authenticator:
     def authenticate(self, authorization: str | None) -> Principal:
         """The caller named by an ``Authorization`` header value; :class:`AuthFailure` otherwise."""
         if self.settings.disabled:
-            return Principal(client_id="auth-disabled", grants=_EVERYTHING, kind="disabled")
+            return Principal(client_id="auth-disabled", grants=_EVERYTHING, kind="disabled", admin=True)
         token = _bearer(authorization)
         if token.startswith(TOKEN_PREFIX):
             if self.settings.mode == "jwt":
@@ -228,6 +230,22 @@ def entry_allowed(principal: Principal, resource_type: str, method: str, *,
     return Issue("forbidden", f"the token's scopes do not cover this entry; it needs {scope}", status=403)
 
 
+def update_refusal(principal: Principal, resource_type: str) -> Issue | None:
+    """None if ``principal`` may change held resources of this type; else the Issue for a create that would.
+
+    A POST keyed on a business identifier that is already held becomes a new version of that resource (a
+    correction, or ``entered-in-error`` withdrawing it): that is an update, whatever the HTTP method, so a
+    create-only token must not do it. Whether a create would change something is known only when it is
+    stored, so the ingestor reports this Issue then (an identical resend changes nothing and stays a 200).
+    """
+    if principal.allows(resource_type, "u"):
+        return None
+    scope = needed_scope(resource_type, frozenset("cu"))
+    return Issue("forbidden", f"this create would change a {resource_type} already held (a new version, or a "
+                 f"result that replaces another), which the token's scopes do not cover; it needs {scope}",
+                 status=403)
+
+
 def auth_outcome_response(exc: AuthFailure, *, realm: str = "lytestream") -> Response:
     """The FHIR answer to a refusal: OperationOutcome plus the RFC 6750 challenge."""
     response = outcome_response([exc.issue], exc.status)
@@ -239,18 +257,31 @@ def auth_outcome_response(exc: AuthFailure, *, realm: str = "lytestream") -> Res
     return response
 
 
-def install_auth(app: FastAPI, authenticator: Authenticator) -> None:
-    """Attach ``authenticator`` to ``app`` and answer :class:`AuthFailure` as FHIR."""
+OnRefused = Callable[[Request, AuthFailure], Awaitable[None]]
+
+
+def install_auth(app: FastAPI, authenticator: Authenticator, *, on_refused: OnRefused | None = None) -> None:
+    """Attach ``authenticator`` to ``app`` and answer :class:`AuthFailure` as FHIR.
+
+    ``on_refused`` records each refusal (the service audits and logs them, within limits); without it a
+    refusal is logged here. A failure to record never changes the answer.
+    """
     app.state.authenticator = authenticator
     realm = authenticator.settings.realm
 
     async def _refused(request: Request, exc: Exception) -> Response:
         if not isinstance(exc, AuthFailure):  # registered for AuthFailure only; keep the type checker honest
             raise exc
-        principal = getattr(request.state, "principal", None)
-        who = principal.client_id if isinstance(principal, Principal) else "-"
-        log.info("auth refused: status=%s error=%s client=%s reason=%s", exc.status, exc.error or "-", who,
-                 exc.description)
+        if on_refused is None:
+            principal = getattr(request.state, "principal", None)
+            who = principal.client_id if isinstance(principal, Principal) else "-"
+            log.warning("auth refused: status=%s error=%s client=%s reason=%s", exc.status, exc.error or "-", who,
+                        exc.description)
+        else:
+            try:
+                await on_refused(request, exc)
+            except Exception as failure:  # the refusal stands whatever became of its record
+                log.error("could not record an auth refusal: %s", type(failure).__name__)
         return auth_outcome_response(exc, realm=realm)
 
     app.add_exception_handler(AuthFailure, _refused)

@@ -7,7 +7,8 @@ from dataclasses import dataclass
 
 from service.errors import Issue
 
-__all__ = ["AuthFailure", "forbidden", "keys_unavailable", "no_credentials", "token_expired", "token_invalid"]
+__all__ = ["AuthFailure", "forbidden", "keys_unavailable", "no_credentials", "not_owner", "token_expired",
+           "token_invalid"]
 
 _UNSAFE = re.compile(r'[^\x20-\x21\x23-\x5b\x5d-\x7e]')  # RFC 6750 §3: error_description characters
 
@@ -59,9 +60,16 @@ def token_expired() -> AuthFailure:
     return AuthFailure(401, "expired", "the access token has expired", error="invalid_token")
 
 
-def forbidden(scope: str) -> AuthFailure:
-    return AuthFailure(403, "forbidden", f"the token's scopes do not cover this request; it needs {scope}",
-                       error="insufficient_scope", scope=scope)
+def forbidden(scope: str, why: str | None = None) -> AuthFailure:
+    """403 for a missing scope; ``why`` says what about the request needs it, when that is not obvious."""
+    lead = f"{why}, which the token's scopes do not cover" if why else "the token's scopes do not cover this request"
+    return AuthFailure(403, "forbidden", f"{lead}; it needs {scope}", error="insufficient_scope", scope=scope)
+
+
+def not_owner(what: str, admin_scope: str) -> AuthFailure:
+    """403 for acting on what another client made (a Subscription) without our admin scope."""
+    return AuthFailure(403, "forbidden", f"{what} belongs to another client; acting on another client's "
+                       f"subscriptions needs {admin_scope}", error="insufficient_scope", scope=admin_scope)
 
 
 def keys_unavailable() -> AuthFailure:

@@ -182,6 +182,13 @@ class JwtVerifier:
         nbf = claims.get("nbf")
         if nbf is not None and (not _is_number(nbf) or at + leeway < nbf):
             raise token_invalid("the token is not valid yet (nbf)")
+        # RFC 9068 §2.2 makes iat required; it is checked when present, so a token "issued" tomorrow (a
+        # forged or broken one, or a badly wrong clock) is refused, with the same small skew as exp and nbf.
+        iat = claims.get("iat")
+        if iat is not None and not _is_number(iat):
+            raise token_invalid("the token has no valid iat claim")
+        if iat is not None and iat > at + leeway:
+            raise token_invalid("the token was issued in the future (iat)")
 
 
 def _header(token: str) -> dict[str, Any]:
@@ -233,8 +240,9 @@ def _principal(claims: dict[str, Any]) -> Principal:
     client = next((c for c in candidates if isinstance(c, str) and c), None)
     if client is None:
         raise token_invalid("the token names no client (client_id or sub)")
-    return Principal(client_id=client, grants=parse_scopes(scope_string).grants, kind="jwt",
-                     subject=sub if sub != client else None)
+    parsed = parse_scopes(scope_string)
+    return Principal(client_id=client, grants=parsed.grants, kind="jwt", subject=sub if sub != client else None,
+                     admin=parsed.admin)
 
 
 def _is_number(value: object) -> TypeGuard[int | float]:

@@ -21,6 +21,7 @@ class Principal:
     kind: TokenKind
     token_id: int | None = None  # ApiToken.id for minted tokens
     subject: str | None = None  # JWT ``sub`` when it differs from the client
+    admin: bool = False  # holds lytestream/admin: may act on other clients' Subscriptions
 
     def allows(self, resource_type: str, interaction: str) -> bool:
         return allows(self.grants, resource_type, interaction)

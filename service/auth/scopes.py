@@ -17,6 +17,10 @@ Recognised but granting nothing (a token carrying them is still accepted for its
 * undefined or out-of-order permission strings such as ``.dus`` (the spec says these MAY be ignored or
   rejected; ignoring them stops ``.read`` being misread as ``.rd``).
 
+One scope of our own, :data:`ADMIN_SCOPE` (``lytestream/admin``), lets its holder act on Subscriptions
+other clients made (with the Subscription scope for the interaction as well). It grants no clinical data
+and no interaction by itself; no ``system/`` scope, however wide (``system/*.cruds``), stands in for it.
+
 Anything else (``openid``, ``launch/patient``, ``offline_access``, ``__ext``, URLs) is not a clinical
 data scope and is passed over. :func:`parse_strict` refuses every one of the above instead; it is for
 scopes we issue ourselves, where a scope that grants nothing is a mistake worth stopping.
@@ -29,6 +33,7 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 
 __all__ = [
+    "ADMIN_SCOPE",
     "INTERACTIONS",
     "Grant",
     "ParsedScopes",
@@ -38,8 +43,10 @@ __all__ = [
     "parse_scope",
     "parse_scopes",
     "parse_strict",
+    "strict_scope_string",
 ]
 
+ADMIN_SCOPE = "lytestream/admin"  # act on other clients' Subscriptions; exact match, case-sensitive
 INTERACTIONS = "cruds"  # create, read, update, delete, search — the order SMART v2 requires
 _V1 = {"read": "rs", "write": "cud", "*": "cruds"}
 _CLINICAL = re.compile(r"^(?P<level>patient|user|system)/(?P<type>[^./?]+)\.(?P<perm>[^?]*)(?P<query>\?.*)?$")
@@ -73,10 +80,11 @@ class Grant:
 
 @dataclass(frozen=True, slots=True)
 class ParsedScopes:
-    """What a scope string grants, and what it held that grants nothing (scope, reason)."""
+    """What a scope string grants, what it held that grants nothing (scope, reason), and our admin scope."""
 
     grants: tuple[Grant, ...]
     ignored: tuple[tuple[str, str], ...]
+    admin: bool = False
 
 
 def parse_scope(scope: str) -> Grant:
@@ -102,12 +110,16 @@ def parse_scopes(scope_string: str) -> ParsedScopes:
     """A space-separated scope string (RFC 6749 §3.3) read leniently: unusable scopes are set aside."""
     grants: list[Grant] = []
     ignored: list[tuple[str, str]] = []
+    admin = False
     for scope in scope_string.split():
+        if scope == ADMIN_SCOPE:
+            admin = True
+            continue
         try:
             grants.append(parse_scope(scope))
         except ScopeError as exc:
             ignored.append((scope, exc.reason))
-    return ParsedScopes(tuple(grants), tuple(ignored))
+    return ParsedScopes(tuple(grants), tuple(ignored), admin)
 
 
 def parse_strict(scope_string: str) -> tuple[Grant, ...]:
@@ -119,6 +131,16 @@ def parse_strict(scope_string: str) -> tuple[Grant, ...]:
     if not parsed.grants:
         raise ScopeError(scope_string, "no scope given")
     return parsed.grants
+
+
+def strict_scope_string(scope_string: str) -> str:
+    """The scope string as we store it for a minted token: grants in v2 shortest form, then our own scope.
+
+    Strict as :func:`parse_strict`: the admin scope alone lets its holder do nothing, so it is refused too.
+    """
+    grants = parse_strict(scope_string)
+    own = [ADMIN_SCOPE] if parse_scopes(scope_string).admin else []
+    return " ".join([g.scope for g in grants] + own)
 
 
 def allows(grants: Iterable[Grant], resource_type: str, interaction: str) -> bool:

@@ -50,7 +50,9 @@ class AuthSettings(BaseModel):
     audience: str | None = Field(default=None, description="our `aud`, usually the public FHIR base URL")
     jwks_url: str | None = Field(default=None, description="the authorisation server's jwks_uri (https)")
     algorithms: tuple[str, ...] = Field(default=("RS256", "ES256"), min_length=1)
-    leeway_seconds: int = Field(default=30, ge=0, le=300, description="clock skew allowed on exp/nbf")
+    leeway_seconds: int = Field(default=30, ge=0, le=300,
+                                description="clock skew allowed on exp, nbf and iat (a token issued further "
+                                            "ahead than this is refused)")
     jwks_ttl_seconds: float = Field(default=600.0, gt=0, description="how long fetched keys are trusted")
     jwks_min_refetch_seconds: float = Field(
         default=30.0, ge=0, description="an unknown kid refetches the JWKS at most this often"

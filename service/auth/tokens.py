@@ -20,7 +20,7 @@ from datetime import datetime
 from sqlmodel import Session, col, select
 
 from service.auth.principal import Principal
-from service.auth.scopes import parse_scopes, parse_strict
+from service.auth.scopes import parse_scopes, strict_scope_string
 from service.auth.tables import ApiToken
 
 __all__ = [
@@ -59,10 +59,9 @@ def mint(session: Session, *, client: str, scope: str, now: datetime) -> str:
     _check_aware(now)
     if not _CLIENT.match(client):
         raise TokenError("client name must be 1-64 of A-Z a-z 0-9 . _ - and start with a letter or digit")
-    grants = parse_strict(scope)  # a minted scope that would grant nothing is a typo: refuse it
+    stored = strict_scope_string(scope)  # a minted scope that would grant nothing is a typo: refuse it
     token = TOKEN_PREFIX + secrets.token_urlsafe(32)
-    session.add(ApiToken(client=client, scope=" ".join(g.scope for g in grants), token_hash=hash_token(token),
-                         created_at=now))
+    session.add(ApiToken(client=client, scope=stored, token_hash=hash_token(token), created_at=now))
     session.flush()
     return token
 
@@ -98,8 +97,9 @@ def verify_minted(session: Session, *, token: str, now: datetime, touch: bool = 
     if touch:
         row.last_used_at = now
         session.add(row)
-    grants = parse_scopes(row.scope).grants
-    return Principal(client_id=row.client, grants=grants, kind="minted", token_id=row.id)
+    parsed = parse_scopes(row.scope)
+    return Principal(client_id=row.client, grants=parsed.grants, kind="minted", token_id=row.id,
+                     admin=parsed.admin)
 
 
 def record_use(session: Session, *, token_id: int, now: datetime) -> None:

@@ -65,12 +65,13 @@ def served_subscription(row: Any) -> dict[str, Any]:
 
 
 def create_subscription(*, session: Session, resource: dict[str, Any], spec: SubscriptionSpec,
-                        now: datetime) -> Any:
-    """Store a new subscription as ``requested`` and queue its handshake."""
+                        now: datetime, owner: str) -> Any:
+    """Store a new subscription of client ``owner`` as ``requested`` and queue its handshake."""
     sid = str(uuid.uuid4())
     body = {k: v for k, v in resource.items() if k not in ("id", "meta", "status", "error")}
     session.execute(insert(_S).values(id=sid, status="requested", topic=spec.topic, resource=orjson.dumps(body),
-                                      created_at=now, version_id=1, last_updated=now, events_since_start=0))
+                                      created_at=now, version_id=1, last_updated=now, events_since_start=0,
+                                      owner_client=owner))
     queue_handshake(session=session, subscription_id=sid, now=now)
     return session.execute(select(_S).where(_S.c.id == sid)).one()
 

@@ -229,6 +229,9 @@ class SubscriptionRecord(SQLModel, table=True):
     last_updated: datetime = _utc(nullable=False)
     lease_owner: str | None = None
     lease_until: datetime | None = _utc(nullable=True)
+    # The client (token client id) that created it; only it, or a caller with lytestream/admin, may act on it.
+    # None for subscriptions made before owners were recorded: those are left to the admin.
+    owner_client: str | None = Field(default=None, index=True)
 
 
 class SubscriptionEvent(SQLModel, table=True):

@@ -47,6 +47,8 @@ class AuditFacts:
     recorded: datetime
     requester: Requester
     outcome: str = "0"  # 0 success, 4 minor failure, 8 serious failure
+    outcome_desc: str | None = None  # why it failed, in words of ours (never request data)
+    refused: bool = False  # access was refused: BALP shape, but none of its "successful …" profiles claimed
     patient: Mapping[str, Any] | None = None  # FHIR Reference of the one patient this event is about
     what: Sequence[str] = ()  # references of the resources read, written or acted on
     query: str | None = None  # "GET Flag?patient=…" for searches
@@ -98,7 +100,7 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
         "type": {"system": "https://profiles.ihe.net/ITI/BALP/CodeSystem/BasicAuditEntityType", "code": "XrequestId"},
         "what": {"identifier": {"value": f.requester.request_id}},
     })
-    return {
+    event: dict[str, Any] = {
         "resourceType": "AuditEvent",
         "meta": {"profile": [f"{BALP}/IHE.BasicAudit.{profile}"]},
         "type": {"system": "http://terminology.hl7.org/CodeSystem/audit-event-type", "code": "rest",
@@ -118,3 +120,8 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
                              "display": "Application Server"}]},
         "entity": entities,
     }
+    if f.outcome_desc:
+        event["outcomeDesc"] = f.outcome_desc
+    if f.refused:
+        del event["meta"]  # BALP's profiles describe successful interactions; this one was refused
+    return event

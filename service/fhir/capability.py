@@ -56,7 +56,10 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                                              "code": "SMART-on-FHIR"}]}],
                     "description": "Bearer token on every interaction but metadata: SMART v2 system scopes "
                                    "(v1 .read/.write accepted); tokens minted by this server or JWT access "
-                                   "tokens of the hospital's authorisation server.",
+                                   "tokens of the hospital's authorisation server. A create that would change "
+                                   "a held resource needs the update scope; a full-resource subscription "
+                                   "needs system/Flag.r; a subscription belongs to the client that made it "
+                                   "(others need our scope lytestream/admin).",
                 },
                 "interaction": [{"code": "transaction"}, {"code": "batch"}],
                 "resource": [

@@ -87,7 +87,10 @@ def searchset(
     total: int | None,
     now: datetime,
     included: Sequence[dict[str, Any]] = (),
+    outcome: Sequence[Issue] = (),
 ) -> dict[str, Any]:
+    """A searchset; ``outcome`` issues (what was left out, and why) come as an OperationOutcome entry with
+    search mode ``outcome``."""
     links = [{"relation": "self", "url": self_url}]
     if next_url:
         links.append({"relation": "next", "url": next_url})
@@ -103,6 +106,9 @@ def searchset(
             for r in rs
         ],
     }
+    if outcome:
+        bundle["entry"].append({"fullUrl": f"urn:uuid:{uuid.uuid4()}", "resource": operation_outcome(outcome),
+                                "search": {"mode": "outcome"}})
     if total is not None:
         bundle["total"] = total
     return bundle

@@ -48,6 +48,11 @@ def test_scp_as_a_list_is_accepted_in_place_of_scope(verifier: JwtVerifier, make
                                                       Grant("Observation", frozenset("rs")))
 
 
+def test_the_admin_scope_in_a_jwt_names_an_admin(verifier: JwtVerifier, make_jwt: MakeJwt) -> None:
+    assert verifier.verify(make_jwt(scope="system/Subscription.rs lytestream/admin"), now=NOW).admin is True
+    assert verifier.verify(make_jwt(scope="system/*.cruds"), now=NOW).admin is False
+
+
 def test_a_token_without_scope_is_invalid(verifier: JwtVerifier, make_jwt: MakeJwt) -> None:
     assert refusal(verifier, make_jwt(scope=None)).description == "the token carries no scope claim"
 
@@ -66,6 +71,9 @@ def test_audience_may_be_a_list_containing_ours(verifier: JwtVerifier, make_jwt:
         ({"exp": None}, "the token has no valid exp claim"),
         ({"exp": "tomorrow"}, "the token has no valid exp claim"),
         ({"nbf": int(NOW.timestamp()) + 120}, "the token is not valid yet (nbf)"),
+        ({"iat": int(NOW.timestamp()) + 86_400}, "the token was issued in the future (iat)"),
+        ({"iat": int(NOW.timestamp()) + 31}, "the token was issued in the future (iat)"),
+        ({"iat": "yesterday"}, "the token has no valid iat claim"),
         ({"client_id": None, "sub": None}, "the token names no client (client_id or sub)"),
     ],
 )
@@ -81,6 +89,13 @@ def test_expiry_is_checked_against_the_given_time_with_leeway(verifier: JwtVerif
     assert verifier.verify(make_jwt(exp=at - 20), now=NOW).kind == "jwt"  # within the 30 s leeway
     failure = refusal(verifier, make_jwt(exp=at - 31))
     assert (failure.status, failure.issue_code, failure.error) == (401, "expired", "invalid_token")
+
+
+def test_issue_time_may_be_ahead_by_the_leeway_only(verifier: JwtVerifier, make_jwt: MakeJwt) -> None:
+    # A clock a little ahead at the authorisation server is normal; a day ahead is a forged or broken token.
+    at = int(NOW.timestamp())
+    assert verifier.verify(make_jwt(iat=at + 30, nbf=None), now=NOW).kind == "jwt"
+    assert refusal(verifier, make_jwt(iat=at + 86_400, nbf=None)).status == 401
 
 
 def test_a_signature_by_another_key_is_refused(verifier: JwtVerifier, make_jwt: MakeJwt, keys: Keys) -> None:

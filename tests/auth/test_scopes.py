@@ -14,6 +14,7 @@ from service.auth.scopes import (
     parse_scope,
     parse_scopes,
     parse_strict,
+    strict_scope_string,
 )
 
 ALL = frozenset("cruds")
@@ -162,3 +163,23 @@ def test_allows_refuses_an_unknown_interaction() -> None:
 def test_needed_scope_is_the_shortest_v2_form() -> None:
     assert needed_scope("Observation", {"u", "c"}) == "system/Observation.cu"
     assert Grant("Flag", frozenset("sr")).scope == "system/Flag.rs"
+
+
+def test_our_admin_scope_is_read_apart_from_the_clinical_grants() -> None:
+    parsed = parse_scopes("system/Subscription.rs lytestream/admin")
+    assert parsed.admin is True
+    assert parsed.grants == (Grant("Subscription", frozenset("rs")),)
+    assert parsed.ignored == ()
+
+
+@pytest.mark.parametrize("scope", ["system/*.cruds", "system/Subscription.*", "system/Subscription.cruds",
+                                   "lytestream/admin.read", "Lytestream/Admin"])
+def test_no_clinical_scope_and_no_look_alike_is_the_admin_scope(scope: str) -> None:
+    assert parse_scopes(scope).admin is False
+
+
+def test_strict_parsing_keeps_the_admin_scope_but_still_wants_a_grant() -> None:
+    assert strict_scope_string("system/Subscription.read lytestream/admin") == \
+        "system/Subscription.rs lytestream/admin"
+    with pytest.raises(ScopeError):
+        strict_scope_string("lytestream/admin")  # on its own it lets the holder do nothing

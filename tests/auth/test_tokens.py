@@ -119,3 +119,16 @@ def test_revoke_needs_exactly_one_selector_and_aware_time(db: Database) -> None:
             revoke(s, now=NOW, client="a", token_id=1)
         with pytest.raises(ValueError, match="naive"):
             revoke(s, now=NOW.replace(tzinfo=None), client="a")
+
+
+def test_a_minted_admin_scope_is_kept_and_named_on_the_principal(db: Database) -> None:
+    with db.session(write=True) as s:
+        token = mint(s, client="ops", scope="system/Subscription.rs lytestream/admin", now=NOW)
+    with db.session() as s:
+        principal = verify_minted(s, token=token, now=NOW, touch=False)
+    assert principal is not None and principal.admin is True
+    with db.session(write=True) as s:
+        plain = mint(s, client="feed-a", scope="system/*.cruds", now=NOW)
+    with db.session() as s:
+        other = verify_minted(s, token=plain, now=NOW, touch=False)
+    assert other is not None and other.admin is False

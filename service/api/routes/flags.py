@@ -12,6 +12,7 @@ from service.api.fhir_io import fhir_response
 from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
 from service.api.requester import RequesterDep
 from service.auth.deps import require
+from service.auth.scopes import needed_scope
 from service.db.acks import acknowledge
 from service.db.audit import record_audit
 from service.db.flags import subjects
@@ -47,22 +48,48 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
                   priorities=priorities, date_from=low, date_to=high, updated_from=updated_low,
                   updated_to=updated_high, sort=sort, count=page.count, offset=page.offset)
 
-    def run() -> tuple[list[bytes], int, list[bytes]]:
+    def run() -> tuple[list[bytes], int, list[bytes], list[Issue]]:
         with ctx.db.session() as session:
             key = patient_key_for(session=session, alias=alias) if alias else None
             rows, total = ([], 0) if alias and key is None else search_flags(
                 session=session, q=FlagQuery(**{**q.__dict__, "patient_key": key}))
             included: list[bytes] = []
+            withheld: list[Issue] = []
             if includes:
                 refs = [e["valueReference"]["reference"] for r in rows for e in orjson.loads(r)["extension"]
                         if e["url"] == FLAG_DETAIL_URL]
-                included = read_references(session=session, references=refs)
+                readable, withheld = _readable_evidence(refs, who)
+                included = read_references(session=session, references=readable)
         audit_flag_access(ctx, who, rows, subtype="search-type", query=f"GET Flag?{request.url.query}")
-        return rows, total, included
+        return rows, total, included, withheld
 
-    rows, total, included = await run_in_threadpool(run)
+    rows, total, included, withheld = await run_in_threadpool(run)
     return fhir_response(page_bundle(rtype="Flag", params=params, page=page, rows=rows, total=total,
-                                     settings=ctx.settings, now=ctx.clock.now(), included=included))
+                                     settings=ctx.settings, now=ctx.clock.now(), included=included,
+                                     outcome=withheld))
+
+
+def _readable_evidence(refs: list[str], who: Requester) -> tuple[list[str], list[Issue]]:
+    """The evidence references the caller may read, and one warning per resource type left out.
+
+    An included resource is read as surely as ``GET [type]/[id]``, so it needs the same scope; a Flag scope
+    alone must not hand out the results behind it. The warning names what was left out and the scope that
+    would include it, so an empty include is never mistaken for "no evidence".
+    """
+    principal = who.principal
+    readable: list[str] = []
+    left_out: dict[str, set[str]] = {}
+    for ref in dict.fromkeys(refs):
+        rtype = ref.split("/", 1)[0]
+        if principal is not None and principal.allows(rtype, "r"):
+            readable.append(ref)
+        else:
+            left_out.setdefault(rtype, set()).add(ref)
+    issues = [Issue("suppressed", f"{len(found)} {rtype} resource(s) named by Flag:detail were left out: the "
+                    f"token's scopes do not cover reading them; it needs {needed_scope(rtype, 'r')}",
+                    severity="warning")
+              for rtype, found in sorted(left_out.items())]
+    return readable, issues
 
 
 def audit_flag_access(ctx: ContextDep, who: Requester, rows: list[bytes], *, subtype: str,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 from fastapi import APIRouter, Depends, Request
@@ -11,13 +12,17 @@ from fastapi.responses import Response
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response, prefer_return, read_json
 from service.api.requester import RequesterDep
-from service.auth.deps import CallerDep, entry_allowed, require
+from service.auth.deps import CallerDep, auth_outcome_response, entry_allowed, require, update_refusal
+from service.auth.failures import forbidden
+from service.auth.principal import Principal
+from service.auth.scopes import needed_scope
 from service.db.reads import read_version
 from service.errors import Issue, RequestRejected
 from service.fhir.render import operation_outcome, response_bundle
 from service.ingest import EntryRequest, EntryResult
 
 router = APIRouter()
+log = logging.getLogger("lytestream.auth")
 
 _BUNDLE_TYPES = ("transaction", "batch")
 
@@ -32,6 +37,9 @@ async def post_bundle(request: Request, ctx: ContextDep, who: RequesterDep, call
         issue = entry_allowed(caller, str(rtype or (e.url or "").split("?")[0].split("/")[0]), e.method, url=e.url)
         if issue is not None:
             e.refused = issue.at(e.root.removesuffix(".resource"))
+        elif rtype:
+            refusal = update_refusal(caller, str(rtype))
+            e.update_refused = refusal.at(e.root.removesuffix(".resource")) if refusal else None
     ingest = ctx.ingestor.transaction if kind == "transaction" else ctx.ingestor.batch
     results = await run_in_threadpool(ingest, entries, raw=raw, requester=who)
     want = prefer_return(request, "minimal")
@@ -75,7 +83,8 @@ def _bundle_entries(body: Any, max_entries: int) -> tuple[list[EntryRequest], st
     return entries, kind
 
 
-async def _write(request: Request, ctx: ContextDep, who: RequesterDep, rtype: str, method: str) -> Response:
+async def _write(request: Request, ctx: ContextDep, who: RequesterDep, caller: Principal, rtype: str,
+                 method: str) -> Response:
     body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     if not isinstance(body, dict) or body.get("resourceType") != rtype:
         got = body.get("resourceType") if isinstance(body, dict) else None
@@ -89,11 +98,24 @@ async def _write(request: Request, ctx: ContextDep, who: RequesterDep, rtype: st
                                          "system|value")])
         url = f"{rtype}?{query}"
     entry = EntryRequest(root=rtype, resource=body, method=method, url=url,
-                         if_none_exist=request.headers.get("if-none-exist"))
-    result: EntryResult = await run_in_threadpool(
-        ctx.ingestor.single, entry, raw=raw, interaction="create" if method == "POST" else "update", requester=who)
-    if result.body is None and result.location and prefer_return(request, "representation") == "representation":
-        # Nothing new was written (a resend): answer with the version held.
+                         if_none_exist=request.headers.get("if-none-exist"),
+                         update_refused=update_refusal(caller, rtype))
+    try:
+        result: EntryResult = await run_in_threadpool(
+            ctx.ingestor.single, entry, raw=raw, interaction="create" if method == "POST" else "update",
+            requester=who)
+    except RequestRejected as exc:
+        if exc.status == 403 and all(i.code == "forbidden" for i in exc.issues if i.severity == "error"):
+            # The ingestor refused (and audited) a create that would update: answer as any 403, with its challenge.
+            log.warning("auth refused: status=403 error=insufficient_scope client=%s interaction=create-as-update "
+                        "type=%s request=%s", who.client, rtype, who.request_id)
+            return auth_outcome_response(forbidden(needed_scope(rtype, frozenset("cu"))),
+                                         realm=ctx.settings.auth.realm)
+        raise
+    if (result.body is None and result.location and caller.allows(rtype, "r")
+            and prefer_return(request, "representation") == "representation"):
+        # Nothing new was written (a resend, a stale version, a matched If-None-Exist): answer with the version
+        # held, to a caller who may read it. Anyone else gets the outcome: the held version is not theirs to see.
         rid, version = result.location.split("/")[1], result.version_id
         with ctx.db.session() as session:
             result.body = read_version(session=session, resource_type=rtype, rid=rid, version=version)
@@ -117,22 +139,24 @@ def _single_response(request: Request, result: EntryResult, base_url: str) -> Re
 
 
 @router.post("/fhir/Observation", dependencies=[Depends(require("Observation", "c"))])
-async def create_observation(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    return await _write(request, ctx, who, "Observation", "POST")
+async def create_observation(request: Request, ctx: ContextDep, who: RequesterDep, caller: CallerDep) -> Response:
+    return await _write(request, ctx, who, caller, "Observation", "POST")
 
 
 @router.put("/fhir/Observation", dependencies=[Depends(require("Observation", "cu"))])
-async def update_observation(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    return await _write(request, ctx, who, "Observation", "PUT")
+async def update_observation(request: Request, ctx: ContextDep, who: RequesterDep, caller: CallerDep) -> Response:
+    return await _write(request, ctx, who, caller, "Observation", "PUT")
 
 
 @router.post("/fhir/MedicationAdministration",
              dependencies=[Depends(require("MedicationAdministration", "c"))])
-async def create_administration(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    return await _write(request, ctx, who, "MedicationAdministration", "POST")
+async def create_administration(request: Request, ctx: ContextDep, who: RequesterDep,
+                                caller: CallerDep) -> Response:
+    return await _write(request, ctx, who, caller, "MedicationAdministration", "POST")
 
 
 @router.put("/fhir/MedicationAdministration",
             dependencies=[Depends(require("MedicationAdministration", "cu"))])
-async def update_administration(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    return await _write(request, ctx, who, "MedicationAdministration", "PUT")
+async def update_administration(request: Request, ctx: ContextDep, who: RequesterDep,
+                                caller: CallerDep) -> Response:
+    return await _write(request, ctx, who, caller, "MedicationAdministration", "PUT")

@@ -1,4 +1,10 @@
-"""Subscriptions (R5 Backport on R4): create, read, search, update, delete, $status and $events."""
+"""Subscriptions (R5 Backport on R4): create, read, search, update, delete, $status and $events.
+
+A subscription belongs to the client that created it: another client may not see, change, stop, or fetch
+the events of it unless its token holds ``lytestream/admin``. A full-resource payload carries Flags, so
+creating one, switching to one, or fetching events as full resources also needs ``system/Flag.r``; an id-only
+subscriber needs that scope when it reads the Flags named (``GET Flag/{id}`` checks it).
+"""
 
 from __future__ import annotations
 
@@ -15,6 +21,9 @@ from service.api.context import AppContext, ContextDep
 from service.api.fhir_io import fhir_response, read_json
 from service.api.requester import RequesterDep
 from service.auth.deps import require
+from service.auth.failures import forbidden, not_owner
+from service.auth.principal import Principal
+from service.auth.scopes import ADMIN_SCOPE, needed_scope
 from service.db.audit import record_audit
 from service.db.subscriptions import (
     create_subscription,
@@ -59,14 +68,38 @@ def _row(session: Session, sid: str) -> Any:
     return row
 
 
+def _caller(who: Requester) -> Principal:
+    principal = who.principal
+    if not isinstance(principal, Principal):
+        # Fail closed: every route here is authenticated, so this is wiring gone wrong, not a caller to trust.
+        raise RuntimeError("subscription route reached without an authenticated caller")
+    return principal
+
+
+def _owned_row(session: Session, sid: str, who: Requester) -> Any:
+    """The subscription, if the caller made it or holds the admin scope; 403 otherwise (404 if not held)."""
+    row = _row(session, sid)
+    if not _caller(who).admin and (row.owner_client is None or row.owner_client != who.client):
+        raise not_owner(f"Subscription/{sid}", ADMIN_SCOPE)
+    return row
+
+
+def _may_carry_flags(who: Requester, content: str) -> None:
+    """A full-resource payload hands out Flags: the caller must be allowed to read Flags itself."""
+    if content == "full-resource" and not _caller(who).allows("Flag", "r"):
+        raise forbidden(needed_scope("Flag", "r"), "a full-resource payload carries Flag resources")
+
+
 @router.post("/fhir/Subscription", dependencies=[Depends(require("Subscription", "c"))])
 async def create(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     body, _ = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     spec = _spec(ctx, body)
+    _may_carry_flags(who, spec.content)
 
     def run() -> dict[str, Any]:
         with ctx.db.session(write=True) as session:
-            row = create_subscription(session=session, resource=body, spec=spec, now=ctx.clock.now())
+            row = create_subscription(session=session, resource=body, spec=spec, now=ctx.clock.now(),
+                                      owner=who.client)
             _audit(ctx, session, who, "create", row.id, row.version_id)
             return served_subscription(row)
 
@@ -76,18 +109,22 @@ async def create(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
 
 
 @router.get("/fhir/Subscription", dependencies=[Depends(require("Subscription", "s"))])
-def search(ctx: ContextDep) -> Response:
+def search(ctx: ContextDep, who: RequesterDep) -> Response:
+    """The caller's own subscriptions (every client's, for the admin scope)."""
+    query = select(_S).order_by(_S.c.created_at, _S.c.id)
+    if not _caller(who).admin:
+        query = query.where(_S.c.owner_client == who.client)
     with ctx.db.session() as session:
-        rows = session.execute(select(_S).order_by(_S.c.created_at, _S.c.id)).all()
+        rows = session.execute(query).all()
     return fhir_response(searchset([served_subscription(r) for r in rows], base=ctx.settings.base_url,
                                    self_url=f"{ctx.settings.base_url}/Subscription", next_url=None,
                                    total=len(rows), now=ctx.clock.now()))
 
 
 @router.get("/fhir/Subscription/{sid}", dependencies=[Depends(require("Subscription", "r"))])
-def read(sid: str, ctx: ContextDep) -> Response:
+def read(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     with ctx.db.session() as session:
-        return fhir_response(served_subscription(_row(session, sid)))
+        return fhir_response(served_subscription(_owned_row(session, sid, who)))
 
 
 @router.put("/fhir/Subscription/{sid}", dependencies=[Depends(require("Subscription", "u"))])
@@ -97,11 +134,12 @@ async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep
     if isinstance(body, dict) and body.get("id") not in (None, sid):
         raise RequestRejected([Issue("value", "the body's id must be the id in the URL", ("Subscription.id",))])
     spec = _spec(ctx, body)
+    _may_carry_flags(who, spec.content)
 
     def run() -> dict[str, Any]:
         now = ctx.clock.now()
         with ctx.db.session(write=True) as session:
-            row = _row(session, sid)
+            row = _owned_row(session, sid, who)
             wanted = body.get("status")
             status = row.status
             if wanted == "off":
@@ -128,7 +166,7 @@ def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     """Stops it (status ``off``); its events stay for the audit trail."""
     now = ctx.clock.now()
     with ctx.db.session(write=True) as session:
-        row = _row(session, sid)
+        row = _owned_row(session, sid, who)
         session.execute(update(_S).where(_S.c.id == sid).values(status="off", version_id=row.version_id + 1,
                                                                 last_updated=now))
         _audit(ctx, session, who, "delete", sid, row.version_id + 1)
@@ -136,14 +174,14 @@ def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
 
 
 @router.get("/fhir/Subscription/{sid}/$status", dependencies=[Depends(require("Subscription", "r"))])
-def status(sid: str, ctx: ContextDep) -> Response:
+def status(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     with ctx.db.session() as session:
-        state = subscription_state(_row(session, sid), ctx.settings.base_url)
+        state = subscription_state(_owned_row(session, sid, who), ctx.settings.base_url)
     return fhir_response(status_response([state], now=ctx.clock.now()))
 
 
 @router.get("/fhir/Subscription/{sid}/$events", dependencies=[Depends(require("Subscription", "r"))])
-def events(sid: str, request: Request, ctx: ContextDep) -> Response:
+def events(sid: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     """Events by number, for a subscriber that saw a gap: eventsSinceNumber, eventsUntilNumber, content."""
     params = request.query_params
     since, until = _number(params.get("eventsSinceNumber")), _number(params.get("eventsUntilNumber"))
@@ -151,9 +189,10 @@ def events(sid: str, request: Request, ctx: ContextDep) -> Response:
     if content is not None and content not in CONTENT_CODES:
         raise RequestRejected([Issue("value", f"content must be one of {', '.join(CONTENT_CODES)}")])
     with ctx.db.session() as session:
-        row = _row(session, sid)
+        row = _owned_row(session, sid, who)
         state = subscription_state(row, ctx.settings.base_url)
         shown = content or state.content
+        _may_carry_flags(who, shown)
         out = []
         for e in events_between(session=session, subscription_id=sid, since=since, until=until)[:1000]:
             resource = flag_version(session=session, flag_id=e.focus_id, version=e.focus_version) \
