@@ -1,4 +1,4 @@
-"""Revision 52f2e1f7536e on a store that already holds Flags: their priority is taken to have begun when
+"""Revision 0003_flag_paging_state on a store that already holds Flags: their priority is taken to have begun when
 they were raised (acknowledgements already made keep covering them), and nothing is recorded as paged on
 the responder topic (so their next version pages there)."""
 

@@ -1,7 +1,7 @@
 """subscription owner: the client that created each subscription
 
-Revision ID: 0002_subscription_owner
-Revises: 0001
+Revision ID: 0004_subscription_owner
+Revises: 0003_flag_paging_state
 Create Date: 2026-12-03
 
 Existing rows keep a NULL owner: nobody knows who made them, so only a caller with lytestream/admin may
@@ -10,8 +10,8 @@ act on them (the owner may re-create theirs).
 import sqlalchemy as sa
 from alembic import op
 
-revision = '0002_subscription_owner'
-down_revision = '0001'
+revision = '0004_subscription_owner'
+down_revision = '0003_flag_paging_state'
 branch_labels = None
 depends_on = None
 

@@ -1,13 +1,13 @@
 """flag paging state: when the paged priority began, what the responder topic last carried
 
-Revision ID: 52f2e1f7536e
+Revision ID: 0003_flag_paging_state
 Revises: 0002_result_quality
 Create Date: 2026-12-03
 """
 import sqlalchemy as sa
 from alembic import op
 
-revision = '52f2e1f7536e'
+revision = '0003_flag_paging_state'
 down_revision = '0002_result_quality'
 branch_labels = None
 depends_on = None
