@@ -44,7 +44,8 @@ class Evaluator:
     def __call__(self, session: Session, patient_keys: Iterable[str], now: datetime) -> list[FlagWrite]:
         """Re-evaluate these patients (their locks must be held) and write any Flag changes."""
         keys = sorted(set(patient_keys))
-        timelines = load_timelines(session=session, patient_keys=keys, end=now, lookback=self.lookback)
+        end, lookback = self._window(now)
+        timelines = load_timelines(session=session, patient_keys=keys, end=end, lookback=lookback)
         opened = open_flags(session=session, patient_keys=keys)
         changes: list[FlagChange] = []
         for key in keys:
@@ -60,6 +61,13 @@ class Evaluator:
                        flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in written])
         log.info("flags changed: %s", ", ".join(sorted({w.kind for w in written})))
         return written
+
+    def _window(self, now: datetime) -> tuple[datetime, timedelta]:
+        """The current window: (now - lookback, now + the future tolerance], so a result stamped a
+        little after the server's clock (drift the policy tolerates; ingest refuses more) is judged as
+        now rather than left out until the clock catches up."""
+        ahead = timedelta(minutes=self.policy.timing.future_tolerance_minutes)
+        return now + ahead, self.lookback + ahead
 
     def escalate(self, db: Database, now: datetime) -> int:
         """Escalate each active, unacknowledged Flag of an escalated priority once per interval."""

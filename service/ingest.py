@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any
 from urllib.parse import parse_qsl
 
@@ -29,6 +29,7 @@ from service.domain.insulin import InsulinCodes
 from service.domain.versions import Decision
 from service.errors import Issue, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
+from service.fhir.collection_time import check_not_future
 from service.fhir.datetimes import OFFSETLESS_JSON, fix_offsetless
 from service.fhir.normalise import (
     IncomingInsulin,
@@ -95,12 +96,14 @@ class Ingestor:
         insulin: InsulinCodes,
         clock: Clock,
         on_change: OnChange | None = None,
+        future_tolerance: timedelta = timedelta(0),
     ) -> None:
         self.db = db
         self.settings = settings
         self.insulin = insulin
         self.clock = clock
         self.on_change = on_change
+        self.future_tolerance = future_tolerance  # policy [timing]; none by default: refuse any future time
 
     # -- units of work -------------------------------------------------------------------
 
@@ -241,12 +244,14 @@ class Ingestor:
             assert found.entry is not None
             obs = normalise_observation(resource, found.entry, e.root)
             obs = replace(obs, identifier=_check_identifier(e, obs.identifier, if_none_exist))
+            check_not_future(obs, e.root, now=self.clock.now(), tolerance=self.future_tolerance)
             aliases = patient_aliases(obs.subject, f"{e.root}.subject", identities)
             return _Prepared(Kind.OBSERVATION, warnings, aliases, observation=obs,
                              if_none_exist=if_none_exist is not None)
         ins = normalise_insulin(resource, self.insulin, e.root)
         assert ins is not None  # triage saw an insulin coding
         ins = replace(ins, identifier=_check_identifier(e, ins.identifier, if_none_exist))
+        check_not_future(ins, e.root, now=self.clock.now(), tolerance=self.future_tolerance)
         aliases = patient_aliases(ins.subject, f"{e.root}.subject", identities)
         return _Prepared(Kind.INSULIN, warnings, aliases, insulin=ins, if_none_exist=if_none_exist is not None)
 

@@ -43,7 +43,8 @@ def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bo
     clock = clock or SystemClock()
     evaluator = Evaluator(policy=policy, lookback=timedelta(hours=settings.lookback_hours))
     ingestor = Ingestor(db=db, settings=settings, insulin=policy.insulin.codes_matcher(), clock=clock,
-                        on_change=evaluator)
+                        on_change=evaluator,
+                        future_tolerance=timedelta(minutes=policy.timing.future_tolerance_minutes))
     dispatcher = Dispatcher(db=db, settings=settings, clock=clock, client=http or httpx.Client(),
                             rng=random.Random())
     return AppContext(settings=settings, db=db, clock=clock, ingestor=ingestor, policy=policy,
