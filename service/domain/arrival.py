@@ -8,9 +8,20 @@ is arrival minus collection (effective) time. Decision support only.
 from __future__ import annotations
 
 import math
-from datetime import timedelta
+from dataclasses import replace
+from datetime import datetime, timedelta
+from typing import Literal
 
-__all__ = ["duration_words"]
+from service.domain.findings import Finding
+from service.domain.values import Timeline
+
+__all__ = ["DELAY_NUMBER", "Event", "duration_words", "note_late", "window_before"]
+
+# The time a late item is judged at: a result's collection, or the end of an insulin administration.
+Event = Literal["collection", "insulin-end"]
+
+# The number a noted Flag carries beside its sentence, so the delay can be read without parsing text.
+DELAY_NUMBER = "arrived_after_collection_hours"
 
 
 def duration_words(delta: timedelta, *, round_up: bool = False) -> str:
@@ -28,3 +39,36 @@ def duration_words(delta: timedelta, *, round_up: bool = False) -> str:
     if hours:
         return f"{hours} h {minutes} min" if minutes else f"{hours} h"
     return f"{minutes} min"
+
+
+def window_before(timeline: Timeline, end: datetime, lookback: timedelta) -> Timeline:
+    """The part of ``timeline`` a rule would have seen at ``end``: results drawn in (end - lookback, end]
+    and the insulin exposures overlapping it, as the store's own timeline query selects them."""
+    start = end - lookback
+    return Timeline(
+        patient=timeline.patient,
+        window_start=start,
+        window_end=end,
+        results=tuple(r for r in timeline.results if start < r.effective <= end),
+        exposures=tuple(x for x in timeline.exposures if x.start <= end and (x.end is None or x.end > start)),
+        withdrawn=timeline.withdrawn,
+    )
+
+
+def _with_note(finding: Finding, words: str, delay: timedelta) -> Finding:
+    # One plain sentence stays one sentence: the note becomes its last clause.
+    sentence = finding.sentence.removesuffix(".")
+    numbers = {**finding.numbers, DELAY_NUMBER: round(delay.total_seconds() / 3600, 2)}
+    return replace(finding, sentence=f"{sentence}; {words}.", numbers=numbers)
+
+
+def note_late(finding: Finding, *, delay: timedelta, lookback: timedelta, of: Event = "collection",
+              window_end: Event = "collection") -> Finding:
+    """The finding of a result (``of`` "insulin-end": an insulin administration) that arrived ``delay``
+    after its collection (end), later than the look-back window; ``window_end`` says what the window it
+    was judged in ends at."""
+    span = f"{lookback.total_seconds() / 3600:g} h"
+    after = "collection" if of == "collection" else "the insulin administration ended"
+    ending = "at its collection time" if window_end == "collection" else "when the insulin administration ended"
+    return _with_note(finding, f"arrived late, {duration_words(delay)} after {after}: evaluated in the "
+                      f"{span} ending {ending}", delay)

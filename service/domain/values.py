@@ -73,6 +73,7 @@ class LabResult:
     calculated: bool = False  # e.g. osmolality by calculation rather than measured
     issued: datetime | None = None
     encounter: str | None = None
+    arrived: datetime | None = None  # when this version was stored here (its "arrival"), if known
 
     @property
     def reference(self) -> str:

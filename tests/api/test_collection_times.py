@@ -14,9 +14,14 @@ from __future__ import annotations
 from datetime import timedelta
 from typing import Any
 
+import orjson
 from fastapi.testclient import TestClient
+from sqlalchemy import select
 
+from service.api.context import AppContext
 from service.clock import FixedClock
+from service.db.tables import SubscriptionEvent
+from service.notify.topics import FLAG_CHANGED
 from tests.factories import HEADERS, bundle, dumps, insulin, observation
 
 POTASSIUM = "2823-3"
@@ -101,3 +106,106 @@ def test_a_critical_result_2_min_in_the_future_is_judged_as_now_and_raises_its_f
     assert flag["status"] == "active"
     assert flag["code"]["coding"][0]["code"] == "potassium-critical-high"
     assert flag["period"]["start"] == "2026-03-02T12:02:00Z"
+
+
+# -- before the look-back window ----------------------------------------------------------------------
+
+
+def late_potassium(client: TestClient, value: float = 2.3, ident: str = "k-late") -> dict[str, Any]:
+    """A potassium collected 4 d 2 h before the clock (2026-02-26T10:00Z), arriving now."""
+    return entry_response(client, observation(ident, code=POTASSIUM, value=value,
+                                              effective="2026-02-26T10:00:00+00:00"))
+
+
+def test_a_critical_result_4_d_old_raises_a_flag_that_says_it_arrived_late_and_by_how_much(
+    client: TestClient,
+) -> None:
+    response = late_potassium(client)
+    assert response["status"].startswith("201")
+    (flag,) = flags(client, "&status=inactive")
+    assert flag["code"]["coding"][0]["code"] == "potassium-critical-low"
+    assert "2.3" in flag["code"]["text"]
+    assert "arrived late, 4 d 2 h after collection" in flag["code"]["text"]
+    # A record of a danger at the evidence's time: its period ends there (see README, Flags).
+    assert flag["period"] == {"start": "2026-02-26T10:00:00Z", "end": "2026-02-26T10:00:00Z"}
+
+
+def test_a_late_result_is_reported_as_evaluated_in_its_own_window(client: TestClient) -> None:
+    response = late_potassium(client, value=4.2)
+    messages = [i["diagnostics"] for i in response["outcome"]["issue"]]
+    assert any("before the 72 h look-back window" in m and "evaluated in the 72 h ending at its collection" in m
+               for m in messages), messages
+    assert flags(client, "&status=inactive") == [] and flags(client) == []  # 4.2 mmol/L is not critical
+
+
+def test_a_late_flag_is_announced_to_subscribers_as_a_new_flag(client: TestClient, context: AppContext) -> None:
+    sub = {"resourceType": "Subscription", "status": "requested", "reason": "rapid-response paging",
+           "criteria": FLAG_CHANGED,
+           "channel": {"type": "rest-hook", "endpoint": "https://pager.example.org/hook",
+                       "payload": "application/fhir+json"}}
+    assert client.post("/fhir/Subscription", content=orjson.dumps(sub), headers=HEADERS).status_code == 201
+    late_potassium(client)
+    (flag,) = flags(client, "&status=inactive")
+    with context.db.session() as session:
+        rows = session.execute(select(SubscriptionEvent.focus_id, SubscriptionEvent.interaction)  # type: ignore[call-overload]
+                               .where(SubscriptionEvent.kind == "event-notification")).all()
+    assert [tuple(r) for r in rows] == [(flag["id"], "create")]
+
+
+def test_a_late_flag_is_not_closed_by_the_next_current_evaluation(
+    client: TestClient, context: AppContext, clock: FixedClock
+) -> None:
+    late_potassium(client)
+    (before,) = flags(client, "&status=inactive")
+    # A current, normal potassium and a time-driven pass re-evaluate the patient's current window.
+    assert entry_response(client, observation("k-now", code=POTASSIUM, value=4.1))["status"].startswith("201")
+    clock.advance(timedelta(hours=1))
+    context.evaluator.recheck(context.db, clock.now())
+    (after,) = flags(client, "&status=inactive")
+    assert after["meta"]["versionId"] == before["meta"]["versionId"] == "1"
+    assert after["code"]["text"] == before["code"]["text"]
+
+
+def test_late_results_are_judged_with_the_results_of_their_own_window(client: TestClient) -> None:
+    # Sodium 112 then 124 twenty hours later, both collected about 5 days ago: a rise of 12 in 20 h.
+    r = post(client, observation("na-a", value=112, effective="2026-02-25T16:00:00+00:00"),
+             observation("na-b", value=124, effective="2026-02-26T12:00:00+00:00"))
+    assert r.status_code == 200, r.text
+    codes = {f["code"]["coding"][0]["code"]: f for f in flags(client, "&status=inactive")}
+    rise = codes["sodium-rise-too-fast"]
+    assert "from 112 to 124" in rise["code"]["text"]
+    assert "arrived late, 4 d after collection" in rise["code"]["text"]
+    assert rise["period"]["end"] == "2026-02-26T12:00:00Z"
+
+
+def test_a_late_correction_of_a_late_result_updates_its_late_flag(client: TestClient) -> None:
+    late_potassium(client)
+    corrected = observation("k-late", code=POTASSIUM, value=2.1, effective="2026-02-26T10:00:00+00:00",
+                            status="corrected")
+    assert entry_response(client, corrected)["status"].startswith("200")
+    (flag,) = flags(client, "&status=inactive")
+    assert flag["meta"]["versionId"] == "2" and "2.1" in flag["code"]["text"]
+
+
+def test_a_late_result_entered_in_error_withdraws_its_late_flag(client: TestClient) -> None:
+    late_potassium(client)
+    withdrawn = observation("k-late", code=POTASSIUM, value=2.3, effective="2026-02-26T10:00:00+00:00",
+                            status="entered-in-error")
+    assert entry_response(client, withdrawn)["status"].startswith("200")
+    (flag,) = flags(client, "&status=entered-in-error")
+    assert flag["meta"]["versionId"] == "2" and flags(client, "&status=inactive") == []
+
+
+def test_a_late_insulin_infusion_is_judged_in_the_window_ending_when_it_ended(client: TestClient) -> None:
+    # Potassium below 3.5 mmol/L twice, an hour or more apart, during IV insulin (Umpierrez 2024, from
+    # memory; site-policy default), about 5 days ago; the results and the infusion all arrive now.
+    r = post(client, observation("k1", code=POTASSIUM, value=3.2, effective="2026-02-25T01:00:00+00:00"),
+             observation("k2", code=POTASSIUM, value=3.1, effective="2026-02-25T03:00:00+00:00"),
+             insulin("m1", start="2026-02-25T00:00:00+00:00", end="2026-02-25T06:00:00+00:00"))
+    assert r.status_code == 200, r.text
+    notes = [i["diagnostics"] for i in r.json()["entry"][2]["response"]["outcome"]["issue"]]
+    assert any(n.startswith("ended 5 d 6 h before it arrived") for n in notes), notes
+    (flag,) = flags(client, "&status=inactive&code=hypokalemia-on-insulin")
+    assert "arrived late" in flag["code"]["text"]
+    evidence = [e["valueReference"]["reference"] for e in flag["extension"] if e["url"].endswith("flag-detail")]
+    assert any(ref.startswith("MedicationAdministration/") for ref in evidence)
