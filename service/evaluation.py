@@ -22,8 +22,11 @@ from service.db.flags import (
 )
 from service.db.subscriptions import enqueue_events, flag_version
 from service.db.timeline import load_timelines
+from service.domain.arrival import note_arrival_delay
+from service.domain.findings import Finding
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
+from service.domain.values import Timeline
 from service.notify.bundles import interaction_for
 from service.notify.topics import FLAG_CHANGED, FLAG_ESCALATED
 from service.policy import Policy, policy_hash
@@ -49,7 +52,7 @@ class Evaluator:
         opened = open_flags(session=session, patient_keys=keys)
         changes: list[FlagChange] = []
         for key in keys:
-            findings = evaluate(timelines[key], self.policy, now)
+            findings = self._noted(evaluate(timelines[key], self.policy, now), timelines[key])
             changes += reconcile(findings, opened.get(key, []), timelines[key].withdrawn, now)
         if not changes:
             return []
@@ -68,6 +71,11 @@ class Evaluator:
         now rather than left out until the clock catches up."""
         ahead = timedelta(minutes=self.policy.timing.future_tolerance_minutes)
         return now + ahead, self.lookback + ahead
+
+    def _noted(self, findings: list[Finding], timeline: Timeline) -> list[Finding]:
+        """Findings whose newest result arrived late say so (policy [timing] late_note_after_minutes)."""
+        after = timedelta(minutes=self.policy.timing.late_note_after_minutes)
+        return [note_arrival_delay(f, timeline.results, after=after) for f in findings]
 
     def escalate(self, db: Database, now: datetime) -> int:
         """Escalate each active, unacknowledged Flag of an escalated priority once per interval."""

@@ -60,7 +60,7 @@ def load_timelines(
             observation_id=r.id, version=r.version_id, patient=r.patient_key, analyte=Analyte(r.analyte),
             specimen=Specimen(r.specimen), loinc=r.loinc, status=ResultStatus(r.status),
             effective=r.effective, value=r.value, comparator=r.comparator, calculated=r.calculated,
-            issued=r.issued, encounter=r.encounter,
+            issued=r.issued, encounter=r.encounter, arrived=r.last_updated,
         ))
     exposures: dict[str, list[InsulinExposure]] = {k: [] for k in keys}
     for x in exposure_rows:

@@ -8,14 +8,15 @@ is arrival minus collection (effective) time. Decision support only.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from dataclasses import replace
 from datetime import datetime, timedelta
 from typing import Literal
 
 from service.domain.findings import Finding
-from service.domain.values import Timeline
+from service.domain.values import LabResult, Timeline
 
-__all__ = ["DELAY_NUMBER", "Event", "duration_words", "note_late", "window_before"]
+__all__ = ["DELAY_NUMBER", "Event", "duration_words", "note_arrival_delay", "note_late", "window_before"]
 
 # The time a late item is judged at: a result's collection, or the end of an insulin administration.
 Event = Literal["collection", "insulin-end"]
@@ -72,3 +73,20 @@ def note_late(finding: Finding, *, delay: timedelta, lookback: timedelta, of: Ev
     ending = "at its collection time" if window_end == "collection" else "when the insulin administration ended"
     return _with_note(finding, f"arrived late, {duration_words(delay)} after {after}: evaluated in the "
                       f"{span} ending {ending}", delay)
+
+
+def note_arrival_delay(finding: Finding, results: Iterable[LabResult], *, after: timedelta) -> Finding:
+    """The finding, its sentence noting the delay when its newest cited result (the latest collected;
+    of equal times the later arrival) arrived more than ``after`` after collection."""
+    cited = set(finding.evidence)
+    newest: LabResult | None = None
+    for r in results:
+        if r.reference in cited and (newest is None or (r.effective, r.arrived or r.effective)
+                                     > (newest.effective, newest.arrived or newest.effective)):
+            newest = r
+    if newest is None or newest.arrived is None:
+        return finding
+    delay = newest.arrived - newest.effective
+    if delay <= after:
+        return finding
+    return _with_note(finding, f"newest result arrived {duration_words(delay)} after collection", delay)

@@ -187,6 +187,22 @@ def test_a_late_correction_of_a_late_result_updates_its_late_flag(client: TestCl
     assert flag["meta"]["versionId"] == "2" and "2.1" in flag["code"]["text"]
 
 
+# -- late within the window ---------------------------------------------------------------------------
+
+
+def test_a_flag_whose_newest_result_arrived_2_h_after_collection_notes_the_delay(client: TestClient) -> None:
+    entry_response(client, observation("na1", value=118, effective="2026-03-02T10:00:00+00:00"))
+    (flag,) = flags(client)
+    assert flag["status"] == "active"
+    assert flag["code"]["text"].endswith("; newest result arrived 2 h after collection.")
+
+
+def test_a_flag_whose_newest_result_arrived_within_the_policy_delay_has_no_note(client: TestClient) -> None:
+    entry_response(client, observation("na1", value=118, effective="2026-03-02T11:30:00+00:00"))
+    (flag,) = flags(client)
+    assert "arrived" not in flag["code"]["text"]
+
+
 def test_a_late_result_entered_in_error_withdraws_its_late_flag(client: TestClient) -> None:
     late_potassium(client)
     withdrawn = observation("k-late", code=POTASSIUM, value=2.3, effective="2026-02-26T10:00:00+00:00",

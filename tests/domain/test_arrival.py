@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.domain.arrival import duration_words, note_late, window_before
+from service.domain.arrival import duration_words, note_arrival_delay, note_late, window_before
 from service.domain.coverage import unread_exposure, unread_result
 from service.domain.findings import Rule
 from service.domain.rules import evaluate
@@ -72,6 +72,28 @@ def test_a_late_finding_says_it_arrived_late_and_by_how_much() -> None:
                                    "evaluated in the 72 h ending at its collection time.")
     assert noted.numbers["arrived_after_collection_hours"] == pytest.approx(98.0)
     assert (noted.rule, noted.evidence, noted.episode) == (finding.rule, finding.evidence, finding.episode)
+
+
+def test_the_delay_of_the_newest_cited_result_is_noted_when_it_exceeds_the_policy_delay() -> None:
+    older = replace(na(119, 0), arrived=at(0.2))
+    newest = replace(na(118, 1), arrived=at(3.5))
+    (finding,) = evaluate(timeline([older, newest]), POLICY, at(4))
+    noted = note_arrival_delay(finding, (older, newest), after=timedelta(minutes=60))
+    assert noted.sentence.endswith("; newest result arrived 2 h 30 min after collection.")
+    assert noted.numbers["arrived_after_collection_hours"] == pytest.approx(2.5)
+
+
+def test_no_note_when_the_newest_cited_result_arrived_within_the_policy_delay() -> None:
+    older = replace(na(118, 0), arrived=at(5))  # late, but no longer the newest evidence
+    newest = replace(na(117, 1), arrived=at(1.5))
+    (finding,) = evaluate(timeline([older, newest]), POLICY, at(4))
+    assert note_arrival_delay(finding, (older, newest), after=timedelta(minutes=60)) == finding
+
+
+def test_no_note_when_the_arrival_is_unknown() -> None:
+    result = na(118, 0)
+    (finding,) = evaluate(timeline([result]), POLICY, at(4))
+    assert note_arrival_delay(finding, (result,), after=timedelta(minutes=60)) == finding
 
 
 # -- what no rule can read ------------------------------------------------------------------------------
