@@ -27,8 +27,8 @@ def _observation_path(resource: dict[str, Any], root: str) -> str:
     for key in ("effectiveDateTime", "effectiveInstant"):
         if key in resource:
             return f"{root}.{key}"
-    period = resource.get("effectivePeriod") or {}
-    return f"{root}.effectivePeriod.{'start' if period.get('start') else 'end'}"
+    start = (resource.get("effectivePeriod") or {}).get("start")
+    return f"{root}.effectivePeriod.{'start' if isinstance(start, str) and 'T' in start else 'end'}"
 
 
 def _insulin_path(resource: dict[str, Any], root: str) -> str:

@@ -73,6 +73,15 @@ def test_a_single_create_collected_in_the_future_is_a_422_naming_the_effective_e
     assert "3 h 10 min after the server's current time" in issue["diagnostics"]
 
 
+def test_a_future_period_end_read_for_want_of_a_start_time_is_the_element_named(client: TestClient) -> None:
+    obs = observation("f1", value=118)
+    del obs["effectiveDateTime"]
+    obs["effectivePeriod"] = {"start": "2026-03-02", "end": "2026-03-02T15:10:00Z"}  # a start without a time
+    r = client.post("/fhir/Observation", content=dumps(obs), headers=HEADERS)
+    assert r.status_code == 422, r.text
+    assert r.json()["issue"][0]["expression"] == ["Observation.effectivePeriod.end"]
+
+
 def test_a_transaction_with_one_future_result_stores_nothing(client: TestClient) -> None:
     r = post(client, observation("ok", value=139), observation("f1", value=118,
                                                                  effective="2026-03-03T12:00:00+00:00"),
