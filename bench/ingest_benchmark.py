@@ -154,6 +154,7 @@ def inprocess_rate(feed: Feed, warm: Feed, work: Path, *, rules: bool = True) ->
     ctx = _fresh_ingestor(work / f"inproc-{feed.name}{'' if rules else '-no-rules'}")
     if not rules:
         ctx.ingestor.on_change = None
+        ctx.ingestor.on_stored = None  # nor the own-window judgement of late results
     try:
         for raw in warm.bundles:
             ctx.ingestor.transaction(_entries(raw), raw=raw)

@@ -52,11 +52,19 @@ def _summary(database_url: str | None, data_dir: Path | None, start: datetime, e
     from service.cli import _settings
     from service.db.engine import Database
     from service.db.summary import load_facts
+    from service.policy import PolicyError, load_policy
 
-    db = Database(_settings(database_url, data_dir).resolved_database_url)
+    settings = _settings(database_url, data_dir)
+    try:
+        policy = load_policy(settings.policy_file, profile=settings.policy_profile)  # which results rules read
+    except PolicyError as exc:
+        typer.echo(f"site policy: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    db = Database(settings.resolved_database_url)
     try:
         with db.session() as session:
-            return summarise(load_facts(session=session, start=start, end=end), start=start, end=end)
+            facts = load_facts(session=session, start=start, end=end, policy=policy)
+            return summarise(facts, start=start, end=end)
     except SQLAlchemyError as exc:
         typer.echo(f"could not read the store ({type(exc).__name__}); has `lytestream db upgrade` run?",
                    err=True)

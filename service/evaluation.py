@@ -25,9 +25,11 @@ from service.db.flags import (
 from service.db.subscriptions import enqueue_events, flag_version
 from service.db.timeline import load_timelines
 from service.domain.alerting import Change, Paged, measure_of, page_reason
-from service.domain.findings import Priority
+from service.domain.arrival import note_arrival_delay
+from service.domain.findings import Finding, Priority
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
+from service.domain.values import Timeline
 from service.notify.bundles import interaction_for
 from service.notify.topics import FLAG_ALERT, FLAG_CHANGED, FLAG_ESCALATED
 from service.policy import Policy, policy_hash
@@ -48,11 +50,12 @@ class Evaluator:
     def __call__(self, session: Session, patient_keys: Iterable[str], now: datetime) -> list[FlagWrite]:
         """Re-evaluate these patients (their locks must be held) and write any Flag changes."""
         keys = sorted(set(patient_keys))
-        timelines = load_timelines(session=session, patient_keys=keys, end=now, lookback=self.lookback)
+        end, lookback = self._window(now)
+        timelines = load_timelines(session=session, patient_keys=keys, end=end, lookback=lookback)
         opened = open_flags(session=session, patient_keys=keys)
         changes: list[FlagChange] = []
         for key in keys:
-            findings = evaluate(timelines[key], self.policy, now)
+            findings = self._noted(evaluate(timelines[key], self.policy, now), timelines[key])
             changes += reconcile(findings, opened.get(key, []), timelines[key].withdrawn, now)
         if not changes:
             return []
@@ -90,6 +93,17 @@ class Evaluator:
             last[w.id] = sent
             paging.append(w)
         return paging
+    def _window(self, now: datetime) -> tuple[datetime, timedelta]:
+        """The current window: (now - lookback, now + the future tolerance], so a result stamped a
+        little after the server's clock (drift the policy tolerates; ingest refuses more) is judged as
+        now rather than left out until the clock catches up."""
+        ahead = timedelta(minutes=self.policy.timing.future_tolerance_minutes)
+        return now + ahead, self.lookback + ahead
+
+    def _noted(self, findings: list[Finding], timeline: Timeline) -> list[Finding]:
+        """Findings whose newest result arrived late say so (policy [timing] late_note_after_minutes)."""
+        after = timedelta(minutes=self.policy.timing.late_note_after_minutes)
+        return [note_arrival_delay(f, timeline.results, after=after) for f in findings]
 
     def escalate(self, db: Database, now: datetime) -> int:
         """Escalate each active Flag of an escalated priority that no acknowledgement covers, once per

@@ -9,9 +9,9 @@ that the ``on_change`` hook does for the patients touched (so a 2xx means all of
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any
 from urllib.parse import parse_qsl
 
@@ -26,9 +26,11 @@ from service.db.engine import Database
 from service.db.patients import IdentityConflict, resolve_patients
 from service.db.resources import Pending, Written, apply_versions, record_request
 from service.domain.insulin import InsulinCodes
+from service.domain.values import InsulinExposure, LabResult, ResultStatus
 from service.domain.versions import Decision
 from service.errors import Issue, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
+from service.fhir.collection_time import check_not_future
 from service.fhir.datetimes import OFFSETLESS_JSON, fix_offsetless
 from service.fhir.normalise import (
     IncomingInsulin,
@@ -42,10 +44,13 @@ from service.fhir.references import BundleIdentities, patient_aliases, patient_e
 from service.fhir.triage import Kind, triage
 from service.fhir.validate import validate_resource
 
-__all__ = ["EntryRequest", "EntryResult", "Ingestor", "OnChange"]
+__all__ = ["EntryRequest", "EntryResult", "Ingestor", "OnChange", "OnStored"]
 
 # Called inside the unit of work with the patients whose data changed, before it commits.
 OnChange = Callable[[Session, set[str], datetime], object]
+# Called after OnChange with each version just written (by entry slot); returns notes for those entries,
+# so that a result stored but not judged is never answered as "all ok" (service.arrivals).
+OnStored = Callable[[Session, Mapping[int, LabResult | InsulinExposure], datetime], Mapping[int, Sequence[Issue]]]
 
 _STORED_TYPES = ("Observation", "MedicationAdministration")
 
@@ -85,6 +90,7 @@ class _Prepared:
     reason: str = ""
     if_none_exist: bool = False
     update_refused: Issue | None = None
+    root: str = ""  # FHIRPath of the resource, for notes on the stored entry
 
 
 class Ingestor:
@@ -98,12 +104,16 @@ class Ingestor:
         insulin: InsulinCodes,
         clock: Clock,
         on_change: OnChange | None = None,
+        on_stored: OnStored | None = None,
+        future_tolerance: timedelta = timedelta(0),
     ) -> None:
         self.db = db
         self.settings = settings
         self.insulin = insulin
         self.clock = clock
         self.on_change = on_change
+        self.on_stored = on_stored
+        self.future_tolerance = future_tolerance  # policy [timing]; none by default: refuse any future time
 
     # -- units of work -------------------------------------------------------------------
 
@@ -244,15 +254,18 @@ class Ingestor:
             assert found.entry is not None
             obs = normalise_observation(resource, found.entry, e.root)
             obs = replace(obs, identifier=_check_identifier(e, obs.identifier, if_none_exist))
+            check_not_future(obs, e.root, now=self.clock.now(), tolerance=self.future_tolerance)
             aliases = patient_aliases(obs.subject, f"{e.root}.subject", identities)
             return _Prepared(Kind.OBSERVATION, warnings, aliases, observation=obs,
-                             if_none_exist=if_none_exist is not None, update_refused=e.update_refused)
+                             if_none_exist=if_none_exist is not None, update_refused=e.update_refused,
+                             root=e.root)
         ins = normalise_insulin(resource, self.insulin, e.root)
         assert ins is not None  # triage saw an insulin coding
         ins = replace(ins, identifier=_check_identifier(e, ins.identifier, if_none_exist))
+        check_not_future(ins, e.root, now=self.clock.now(), tolerance=self.future_tolerance)
         aliases = patient_aliases(ins.subject, f"{e.root}.subject", identities)
         return _Prepared(Kind.INSULIN, warnings, aliases, insulin=ins, if_none_exist=if_none_exist is not None,
-                         update_refused=e.update_refused)
+                         update_refused=e.update_refused, root=e.root)
 
     # -- storing (inside the unit of work) -----------------------------------------------
 
@@ -294,12 +307,14 @@ class Ingestor:
             raise Invalid(refused)
 
         touched: set[str] = set()
+        stored: dict[int, LabResult | InsulinExposure] = {}
         results: list[EntryResult] = []
         for i, p in enumerate(prepared):
             if i in slot:
                 w = written[slot[i]]
                 if w.decision in (Decision.CREATE, Decision.UPDATE):
                     touched.add(key_of[i])
+                    stored[i] = _stored_value(p, w, pending[slot[i]].row, key_of[i], now)
                     if w.previous_patient:
                         touched.add(w.previous_patient)
                 rtype = pending[slot[i]].resource_type
@@ -312,6 +327,8 @@ class Ingestor:
                 results.append(EntryResult(200, issues=[Issue("informational", p.reason, severity="information")]))
         if touched and self.on_change is not None:
             self.on_change(session, touched, now)
+        if stored and self.on_stored is not None:
+            _add_notes(results, prepared, self.on_stored(session, stored, now))
         return results
 
 
@@ -320,6 +337,28 @@ def _changes_held(w: Written, p: _Prepared) -> bool:
     (observation-replaces takes the named result out of the rules, whichever of the two arrives first)."""
     replaces = p.observation is not None and p.observation.replaces is not None
     return w.decision is Decision.UPDATE or (w.decision is Decision.CREATE and replaces)
+def _stored_value(p: _Prepared, w: Written, row: Mapping[str, Any], patient_key: str, now: datetime
+                  ) -> LabResult | InsulinExposure:
+    """The version just written, as the rules would read it (the row as stored: its end, its quality)."""
+    if p.observation is not None:
+        o = p.observation
+        return LabResult(
+            observation_id=w.id, version=w.version_id, patient=patient_key, analyte=o.entry.analyte,
+            specimen=o.entry.specimen, loinc=o.entry.code, status=ResultStatus(o.status), effective=o.effective,
+            value=o.value, comparator=o.comparator, calculated=o.entry.calculated, issued=o.issued,
+            encounter=o.encounter, key=f"{o.identifier[0]}|{o.identifier[1]}", quality=row.get("quality"),
+            arrived=now,
+        )
+    x = p.insulin
+    assert x is not None
+    return InsulinExposure(source_id=w.id, version=w.version_id, patient=patient_key, start=x.start,
+                           end=row.get("end"), route=x.route, status=x.status, medication=x.medication)
+
+
+def _add_notes(results: list[EntryResult], prepared: Sequence[_Prepared],
+               notes: Mapping[int, Sequence[Issue]]) -> None:
+    for i, issues in notes.items():
+        results[i].issues.extend(replace(n, expression=n.expression or (prepared[i].root,)) for n in issues)
 
 
 def _failed(issues: list[Issue]) -> EntryResult:

@@ -18,6 +18,7 @@ from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
 from service.api.refusals import RefusalAudit, RefusalLimiter
 from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
+from service.arrivals import ArrivalReview
 from service.auth.deps import Authenticator, install_auth
 from service.clock import Clock, SystemClock
 from service.config import Settings
@@ -44,7 +45,9 @@ def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bo
     clock = clock or SystemClock()
     evaluator = Evaluator(policy=policy, lookback=timedelta(hours=settings.lookback_hours))
     ingestor = Ingestor(db=db, settings=settings, insulin=policy.insulin.codes_matcher(), clock=clock,
-                        on_change=evaluator)
+                        on_change=evaluator,
+                        on_stored=ArrivalReview(policy=policy, lookback=timedelta(hours=settings.lookback_hours)),
+                        future_tolerance=timedelta(minutes=policy.timing.future_tolerance_minutes))
     dispatcher = Dispatcher(db=db, settings=settings, clock=clock, client=http or httpx.Client(),
                             rng=random.Random())
     refusals = RefusalLimiter(per_key=settings.refusal_audit_per_client, overall=settings.refusal_audit_overall)

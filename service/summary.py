@@ -22,6 +22,11 @@ results stored                 ``fhir_version`` rows of type Observation, versio
                                the range (a correction is a new version of the same result, not a new one)
 patient-days                   distinct (``observation.patient_key``, UTC calendar date of that version
                                1's ``last_updated``) pairs among the results stored in the range
+results not evaluated,         the results stored in the range whose current ``observation`` row no rule
+by reason                      can read (service.domain.coverage, under the policy in force): ``status``
+                               registered / cancelled / entered-in-error, ``value`` null, ``specimen``
+                               urine, ``analyte`` urea, ``calculated`` true, or a specimen no rule of the
+                               policy reads; one reason each, checked in that order
 result → Flag                  the Flag's version 1 JSON (``flag-detail`` references, version-specific),
                                each referenced Observation version's JSON in ``fhir_version`` (``issued``)
                                and that Observation's version 1 ``last_updated`` (arrival)
@@ -110,6 +115,7 @@ class ResultFact:
     observation_id: str
     patient_key: str
     stored_at: datetime
+    not_evaluated: str | None = None  # why no rule can read its current version (a coverage code), if so
 
 
 @dataclass(frozen=True, slots=True)
@@ -221,6 +227,7 @@ class Summary:
     notifications: Notifications
     audit_events: dict[str, int]
     lines: tuple[FlagLine, ...]
+    not_evaluated: dict[str, int] = field(default_factory=dict)  # results stored in the range, by reason
 
 
 # ------------------------------------------------------------------------------------------ computing
@@ -316,6 +323,7 @@ def summarise(facts: SummaryFacts, *, start: datetime, end: datetime) -> Summary
         ),
         audit_events=dict(sorted(facts.audit_counts.items())),
         lines=tuple(lines),
+        not_evaluated=dict(sorted(Counter(r.not_evaluated for r in results if r.not_evaluated).items())),
     )
 
 
@@ -357,6 +365,7 @@ def summary_json(s: Summary) -> dict[str, Any]:
             "flags_per_1000_results": s.flags_per_1000_results,
             "flags_per_patient_day": s.flags_per_patient_day,
         },
+        "results_not_evaluated": {"count": sum(s.not_evaluated.values()), "by_reason": s.not_evaluated},
         "result_to_flag": _latency_json(s.result_to_flag),
         "flag_to_acknowledgement": {**_latency_json(s.flag_to_ack), "unacknowledged": s.unacknowledged},
         "escalations": {"count": s.escalations, "flags_escalated": s.flags_escalated},
@@ -369,6 +378,9 @@ def summary_json(s: Summary) -> dict[str, Any]:
                            "in the range",
             "evidence_time": "latest, among the cited Observation versions, of issued (else first arrival)",
             "percentile": "nearest-rank; median is the 50th percentile by the same rule",
+            "not_evaluated": "results stored in the range whose current version no rule can read, by "
+                             "reason; a result collected before the look-back window is evaluated in its "
+                             "own window and is not counted here",
         },
         "caution": CAUTION,
     }

@@ -98,3 +98,14 @@ def test_a_backwards_range_exits_2(store: tuple[str, AppContext]) -> None:
     backwards = ["--from", "2026-03-03", "--to", "2026-03-02"]
     result = runner.invoke(audit_app, ["export", *backwards, "--database-url", url])
     assert result.exit_code == 2
+
+
+def test_summary_counts_results_stored_but_not_evaluated(store: tuple[str, AppContext]) -> None:
+    url, ctx = store
+    with authorised_client(ctx) as client:
+        r = client.post("/fhir", content=dumps(bundle("batch", observation("blank", value=None))), headers=HEADERS)
+        assert r.status_code == 200, r.text
+    result = runner.invoke(audit_app, ["summary", *RANGE, "--database-url", url])
+    assert result.exit_code == 0, result.output
+    body = orjson.loads(result.stdout)
+    assert body["results_not_evaluated"] == {"count": 1, "by_reason": {"no-numeric-value": 1}}

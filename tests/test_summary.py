@@ -267,3 +267,21 @@ def test_a_date_time_is_read_with_its_offset() -> None:
 def test_a_date_time_without_an_offset_is_refused() -> None:
     with pytest.raises(ValueError, match="offset"):
         parse_instant("2026-03-01T08:00:00", "start")
+
+
+# ------------------------------------------------------------------------- results not evaluated
+
+
+def test_results_stored_but_not_evaluated_are_counted_by_reason_in_the_range() -> None:
+    facts = SummaryFacts(results=[
+        ResultFact("ok", "pk-1", at(1, 8)),
+        ResultFact("blank", "pk-1", at(1, 9), not_evaluated="no-numeric-value"),
+        ResultFact("urine", "pk-2", at(1, 10), not_evaluated="urine"),
+        ResultFact("urine2", "pk-2", at(2, 10), not_evaluated="urine"),
+        ResultFact("before", "pk-2", START - timedelta(seconds=1), not_evaluated="urine"),  # outside
+    ])
+    s = summarise(facts, start=START, end=END)
+    assert s.results_stored == 4
+    assert s.not_evaluated == {"no-numeric-value": 1, "urine": 2}
+    figure = summary_json(s)["results_not_evaluated"]
+    assert figure == {"count": 3, "by_reason": {"no-numeric-value": 1, "urine": 2}}

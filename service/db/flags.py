@@ -11,17 +11,26 @@ import orjson
 from sqlalchemy import insert, or_, select, update
 from sqlmodel import Session
 
-from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, PatientAlias
+from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag
 from service.fhir.flag_render import FlagView, render_flag
 
-__all__ = ["FlagWrite", "open_flags", "patients_to_recheck", "subjects", "write_changes"]
+__all__ = [
+    "FlagWrite",
+    "open_flags",
+    "patients_to_recheck",
+    "subjects",
+    "withdraw_late_flags",
+    "write_changes",
+    "write_late_flags",
+]
 
 _FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
 _INS = InsulinRecord.__table__  # type: ignore[attr-defined]
 _ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
+_OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
 
 
 def open_flags(*, session: Session, patient_keys: Iterable[str]) -> dict[str, list[OpenFlag]]:
@@ -117,6 +126,86 @@ def write_changes(
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite(kind, rid, version, flag, current))
+    return written
+
+
+def write_late_flags(
+    *,
+    session: Session,
+    findings: Sequence[tuple[Finding, datetime]],
+    subject_of: Mapping[str, Mapping[str, Any]],
+    policy_hash: str,
+    now: datetime,
+) -> list[FlagWrite]:
+    """Write the findings of results judged in their own, past window: each as an inactive Flag whose
+    period ends at its evidence's time (``findings`` pairs each with that time).
+
+    Inactive, because the danger is one the data showed then: the current window, judged by the normal
+    lifecycle, says whether it still stands, and an active Flag it does not find would be closed on the
+    next evaluation before anyone saw it (see README, Flags). A Flag of the same episode that is active
+    belongs to the current window and is left alone; one that is closed gets a new version when the
+    finding differs; a finding already written writes nothing.
+    """
+    written: list[FlagWrite] = []
+    for f, end in findings:
+        values = _finding_values(f, policy_hash) | {"status": "inactive", "period_end": end}
+        row = _existing(session, f)
+        if row is None:
+            rid, version, kind = str(uuid.uuid4()), 1, "create"
+            session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, raised_at=now, **values))
+        elif row.status == "active":
+            continue
+        else:
+            if row.period_end is not None and row.period_end > end:
+                values["period_end"] = row.period_end  # it stood until then: keep the later end
+            if all(getattr(row, k) == v for k, v in values.items()):
+                continue
+            rid, version, kind = row.id, row.version_id + 1, "update"
+            session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(version_id=version, last_updated=now,
+                                                                           **values))
+        current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
+        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
+                                          request_id=None, resource=orjson.dumps(flag)))
+        written.append(FlagWrite(kind, rid, version, flag))
+    return written
+
+
+def withdraw_late_flags(
+    *,
+    session: Session,
+    patient_key: str,
+    withdrawn: Iterable[str],
+    subject_of: Mapping[str, Mapping[str, Any]],
+    now: datetime,
+) -> list[FlagWrite]:
+    """Inactive Flags of the patient citing a result of ``withdrawn`` (versionless "Observation/<id>",
+    results older than the look-back window just entered in error) whose every cited Observation is
+    now entered in error: each gets a version with status entered-in-error, as an active Flag would.
+
+    The current window's lifecycle never sees these Flags (it opens active ones only), so without this
+    a late Flag would go on citing a result its lab has withdrawn.
+    """
+    gone = set(withdrawn)
+    written: list[FlagWrite] = []
+    rows = session.execute(select(_FLAG).where(_FLAG.c.patient_key == patient_key,
+                                               _FLAG.c.status == "inactive").order_by(_FLAG.c.id)).all()
+    for row in rows:
+        cited = {ref.split("/_history/")[0] for ref in orjson.loads(row.evidence) if ref.startswith("Observation/")}
+        if not cited & gone:
+            continue
+        ids = [ref.split("/")[1] for ref in cited]
+        statuses = dict(session.execute(select(_OBS.c.id, _OBS.c.status).where(_OBS.c.id.in_(ids))).all())
+        if any(statuses.get(i) != "entered-in-error" for i in ids):
+            continue
+        version = row.version_id + 1
+        session.execute(update(_FLAG).where(_FLAG.c.id == row.id).values(
+            status="entered-in-error", version_id=version, last_updated=now))
+        current = session.execute(select(_FLAG).where(_FLAG.c.id == row.id)).one()
+        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        session.execute(insert(_V).values(resource_type="Flag", id=row.id, version_id=version, last_updated=now,
+                                          request_id=None, resource=orjson.dumps(flag)))
+        written.append(FlagWrite("withdraw", row.id, version, flag))
     return written
 
 

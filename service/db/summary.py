@@ -27,8 +27,11 @@ from service.db.tables import (
     ObservationRecord,
     SubscriptionEvent,
 )
+from service.domain.coverage import unread_result
+from service.domain.values import Analyte, LabResult, ResultStatus, Specimen
 from service.fhir.flag_render import EVALUATION_URL, FLAG_DETAIL_URL, FLAG_PRIORITY_URL
 from service.fhir.normalise import parse_datetime
+from service.policy import Policy
 from service.summary import (
     AckFact,
     EscalationFact,
@@ -54,8 +57,9 @@ _CHUNK = 500  # keeps IN lists well inside every backend's parameter limit
 T = TypeVar("T")
 
 
-def load_facts(*, session: Session, start: datetime, end: datetime) -> SummaryFacts:
-    """Everything :func:`service.summary.summarise` needs for [start, end)."""
+def load_facts(*, session: Session, start: datetime, end: datetime, policy: Policy) -> SummaryFacts:
+    """Everything :func:`service.summary.summarise` needs for [start, end); ``policy`` decides which
+    stored results no rule can read."""
     cohort = [fid for (fid,) in session.execute(
         select(_V.c.id).where(_V.c.resource_type == "Flag", _V.c.version_id == 1,
                               _V.c.last_updated >= start, _V.c.last_updated < end))]
@@ -66,7 +70,7 @@ def load_facts(*, session: Session, start: datetime, end: datetime) -> SummaryFa
     return SummaryFacts(
         flag_versions=versions,
         evidence=_evidence(session, cited),
-        results=_results(session, start, end),
+        results=_results(session, start, end, policy),
         first_acks=[AckFact(fid, at) for fid, at in sorted(acks.items())],
         escalations=_escalations(session, cohort),
         outbox=_outbox(session, start, end),
@@ -135,13 +139,22 @@ def _evidence(session: Session, references: Sequence[str]) -> list[EvidenceFact]
             if key in issued and key[0] in arrived]
 
 
-def _results(session: Session, start: datetime, end: datetime) -> list[ResultFact]:
+def _results(session: Session, start: datetime, end: datetime, policy: Policy) -> list[ResultFact]:
     rows = session.execute(
-        select(_V.c.id, _OBS.c.patient_key, _V.c.last_updated)
+        select(_V.c.last_updated.label("stored_at"), _OBS)
         .select_from(_V.join(_OBS, _OBS.c.id == _V.c.id))
         .where(_V.c.resource_type == "Observation", _V.c.version_id == 1,
                _V.c.last_updated >= start, _V.c.last_updated < end))
-    return [ResultFact(rid, key, at) for rid, key, at in rows]
+    return [ResultFact(r.id, r.patient_key, r.stored_at, _not_evaluated(r, policy)) for r in rows]
+
+
+def _not_evaluated(r: Any, policy: Policy) -> str | None:
+    """The coverage code of the current row, read as the rules read it (the same function ingest uses)."""
+    result = LabResult(observation_id=r.id, version=r.version_id, patient=r.patient_key, analyte=Analyte(r.analyte),
+                       specimen=Specimen(r.specimen), loinc=r.loinc, status=ResultStatus(r.status),
+                       effective=r.effective, value=r.value, comparator=r.comparator, calculated=r.calculated)
+    unread = unread_result(result, policy)
+    return None if unread is None else unread.code
 
 
 def _escalations(session: Session, flag_ids: Sequence[str]) -> list[EscalationFact]:

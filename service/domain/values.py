@@ -93,6 +93,7 @@ class LabResult:
     key: str = ""
     # What the lab said about the sample's quality, e.g. "haemolysed (specimen condition HEM)".
     quality: str | None = None
+    arrived: datetime | None = None  # when this version was stored here (its "arrival"), if known
 
     @property
     def reference(self) -> str:

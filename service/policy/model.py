@@ -37,6 +37,7 @@ __all__ = [
     "SodiumFall",
     "SodiumPolicy",
     "SodiumRise",
+    "TimingPolicy",
     "policy_hash",
 ]
 
@@ -288,6 +289,15 @@ class AlertingPolicy(_Section):
         return float(value) if isinstance(value, (int, float)) else None
 
 
+class TimingPolicy(_Section):
+    """How collection times far from the server's clock are treated (see README, Flags)."""
+
+    # A collection time up to this far after the server's clock is judged as now; beyond it, refused.
+    future_tolerance_minutes: Minutes
+    # A Flag whose newest result arrived more than this after its collection says so in its sentence.
+    late_note_after_minutes: Minutes
+
+
 class InsulinMedication(_Section):
     """Which medication codings count as insulin: ATC prefixes and single "system|code" entries."""
 
@@ -311,6 +321,7 @@ class Policy(_Section):
     insulin: InsulinMedication
     escalation: EscalationPolicy
     alerting: AlertingPolicy
+    timing: TimingPolicy
 
     @model_validator(mode="after")
     def _check(self) -> Policy:

@@ -201,3 +201,22 @@ def test_a_delivery_given_up_counts_as_failed(
         clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
     n = summary(api, "start=2026-03-02&end=2026-03-04")
     assert (n["notifications"]["failed"], n["notifications"]["attempts"]) == (1, 1 + tries)
+
+
+# ---------------------------------------------------------------------------- results not evaluated
+
+
+def test_results_stored_but_not_evaluated_are_counted_by_reason(api: TestClient) -> None:
+    send(api, observation("blank", value=None, patient="Patient/p1"),
+         observation("urine", code="2955-3", value=40, patient="Patient/p1"),   # sodium in urine
+         observation("na", value=138, patient="Patient/p1"))
+    s = summary(api)
+    assert s["alert_burden"]["results_stored"] == 3
+    assert s["results_not_evaluated"] == {"count": 2, "by_reason": {"no-numeric-value": 1, "urine": 1}}
+
+
+def test_a_result_later_resulted_is_no_longer_counted_as_not_evaluated(api: TestClient) -> None:
+    send(api, observation("na", value=None, status="registered", patient="Patient/p1"))
+    assert summary(api)["results_not_evaluated"]["by_reason"] == {"status-registered": 1}
+    send(api, observation("na", value=138, patient="Patient/p1"))
+    assert summary(api)["results_not_evaluated"] == {"count": 0, "by_reason": {}}

@@ -107,8 +107,8 @@ def test_shuffled_stream_with_duplicates_gives_the_same_timeline(
         observation("b", value=118, effective="2026-03-02T06:00:00+00:00"),
         observation("b", value=117, effective="2026-03-02T06:00:00+00:00", status="corrected"),
         observation("c", value=121, effective="2026-03-02T12:00:00+00:00"),
-        observation("d", value=150, effective="2026-03-02T13:00:00+00:00"),
-        observation("d", value=150, effective="2026-03-02T13:00:00+00:00", status="entered-in-error"),
+        observation("d", value=150, effective="2026-03-02T11:00:00+00:00"),
+        observation("d", value=150, effective="2026-03-02T11:00:00+00:00", status="entered-in-error"),
     ]
     rng = random.Random(7)
     shuffled = stream + rng.sample(stream, 3)

@@ -149,3 +149,15 @@ def test_a_missing_file_is_refused(tmp_path: Path) -> None:
 
 def test_the_default_file_is_plain_toml() -> None:
     assert "levels" in tomllib.loads(default_text())
+
+
+def test_default_timing_keys() -> None:
+    # Common practice, no source: a few minutes of clock drift between systems; an hour's delay is notable.
+    timing = load_policy().timing
+    assert (timing.future_tolerance_minutes, timing.late_note_after_minutes) == (5, 60)
+
+
+def test_a_negative_future_tolerance_is_refused_with_its_path(tmp_path: Path) -> None:
+    text = default_text().replace("future_tolerance_minutes = 5", "future_tolerance_minutes = -1")
+    with pytest.raises(PolicyError, match=r"^timing\.future_tolerance_minutes: must be >= 0"):
+        load_policy(write(tmp_path, text))

@@ -40,7 +40,8 @@ async def flag_summary(request: Request, ctx: ContextDep, who: RequesterDep) -> 
 
     def run() -> bytes:
         with ctx.db.session() as session:
-            summary = summarise(load_facts(session=session, start=start, end=end), start=start, end=end)
+            stored = load_facts(session=session, start=start, end=end, policy=ctx.policy)
+            summary = summarise(stored, start=start, end=end)
         with ctx.db.session(write=True) as session:
             facts = AuditFacts(subtype="operation", operation="$summary", recorded=now, requester=who,
                                query=f"GET Flag/$summary?{request.url.query}",
