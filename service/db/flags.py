@@ -152,7 +152,8 @@ def write_late_flags(
         row = _existing(session, f)
         if row is None:
             rid, version, kind = str(uuid.uuid4()), 1, "create"
-            session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, raised_at=now, **values))
+            session.execute(insert(_FLAG).values(id=rid, version_id=1, last_updated=now, raised_at=now,
+                                                 priority_since=now, **values))
         elif row.status == "active":
             continue
         else:

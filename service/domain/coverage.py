@@ -47,6 +47,8 @@ _NO_VALUE = Unread("no-numeric-value", "no numeric value (valueQuantity.value): 
 _URINE = Unread("urine", "urine specimen: the rules judge blood and serum only")
 _CALCULATED = Unread("calculated", "calculated value: the rules read measured osmolality only")
 _UREA = Unread("analyte-not-read", "no rule reads urea: stored for the record")
+_CALCIUM = Unread("context-only", "calcium is context only: read beside a high potassium as a sign of "
+                  "K2EDTA contamination; no rule flags calcium itself")
 
 
 def read_specimens(analyte: Analyte, policy: Policy) -> frozenset[Specimen]:
@@ -77,6 +79,8 @@ def unread_result(result: LabResult, policy: Policy) -> Unread | None:
         return _URINE
     if result.analyte is Analyte.UREA:
         return _UREA
+    if result.analyte is Analyte.CALCIUM:
+        return _CALCIUM
     if result.calculated:
         return _CALCULATED
     if result.specimen not in read_specimens(result.analyte, policy):

@@ -26,6 +26,7 @@ _LOINC = {
     Analyte.GLUCOSE: "14749-6",
     Analyte.OSMOLALITY: "2692-2",
     Analyte.UREA: "22664-7",
+    Analyte.CALCIUM: "2000-8",
 }
 
 
