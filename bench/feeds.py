@@ -33,7 +33,11 @@ LOINC = "http://loinc.org"
 UCUM = "http://unitsofmeasure.org"
 # The lab clock runs one hour ahead of UTC; FHIR requires the offset on every time of day.
 LAB_ZONE = timezone(timedelta(hours=1))
-FEED_START = datetime(2026, 3, 2, 0, 0, tzinfo=LAB_ZONE)
+# The feed ends an hour before the benchmark starts and spans FEED_DAYS, so every result falls inside
+# the rules' 72 h look-back: the rules judge real timelines (a feed dated long ago would take the
+# late-result path, and a future one would be refused).
+FEED_DAYS = 2.0
+FEED_START = (datetime.now(LAB_ZONE) - timedelta(days=FEED_DAYS, hours=1)).replace(minute=0, second=0, microsecond=0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -158,7 +162,7 @@ def transaction_bundle(resources: Sequence[dict[str, Any]], rng: random.Random) 
 
 def make_feed(
     name: str, panel: Sequence[Analyte], *, results: int, patients: int, bundle_size: int, seed: int,
-    prefix: str | None = None, days: float = 5.0,
+    prefix: str | None = None, days: float = FEED_DAYS,
 ) -> Feed:
     """A feed of about ``results`` results (whole draws) in Bundles of ``bundle_size``."""
     rng = random.Random(seed)
