@@ -30,6 +30,9 @@ class Settings(BaseSettings):
     )
     max_bundle_entries: int = Field(default=1000, gt=0)
     max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0)
+    # FHIR R4: string.value has maxLength 1048576 (characters); a deployment may only lower it.
+    max_string_chars: int = Field(default=1024 * 1024, gt=0, le=1024 * 1024,
+                                  description="longest string (or element name) accepted, in characters")
     lookback_hours: float = Field(default=72.0, gt=0, description="how far back the timeline reaches")
     page_size_default: int = Field(default=50, gt=0)
     page_size_max: int = Field(default=500, gt=0)

@@ -8,7 +8,9 @@ import orjson
 from fastapi import Request
 from fastapi.responses import Response
 
+from service.config import Settings
 from service.errors import Issue, RequestRejected
+from service.fhir.limits import overlong_strings_outside_entries
 from service.fhir.render import FHIR_JSON, operation_outcome
 
 __all__ = ["fhir_response", "outcome_response", "prefer_return", "read_json"]
@@ -33,10 +35,19 @@ async def read_json(request: Request, *, max_bytes: int) -> tuple[Any, bytes]:
             raise _too_large(size, max_bytes)
         chunks.append(chunk)
     raw = b"".join(chunks)
+    settings: Settings = request.app.state.ctx.settings
     try:
-        return orjson.loads(raw), raw
+        body = orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
         raise RequestRejected([Issue("structure", f"malformed JSON: {exc}")]) from exc
+    # A string cannot have more characters than the body has bytes: small bodies need no walk.
+    if len(raw) > settings.max_string_chars:
+        rtype = body.get("resourceType") if isinstance(body, dict) else None
+        root = rtype if isinstance(rtype, str) and rtype.isalpha() and len(rtype) <= 64 else "Resource"
+        issues = overlong_strings_outside_entries(body, root, settings.max_string_chars)
+        if issues:
+            raise RequestRejected(issues)
+    return body, raw
 
 
 def _too_large(size: int, limit: int) -> RequestRejected:
