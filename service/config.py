@@ -29,7 +29,14 @@ class Settings(BaseSettings):
         description="IANA zone of the lab clock; when set, date-times without an offset are read in it",
     )
     max_bundle_entries: int = Field(default=1000, gt=0)
-    max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0)
+    max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0, description="largest request body, in bytes")
+    # A full Bundle of 1000 lab results is about 52,000 JSON values; memory grows with the count.
+    max_json_values: int = Field(default=100_000, gt=0,
+                                 description="most JSON values (objects, arrays, primitives) in one request")
+    max_concurrent_bodies: int = Field(default=2, gt=0,
+                                       description="requests per worker reading and processing a body at once")
+    body_timeout_seconds: float = Field(default=10.0, gt=0,
+                                        description="the whole request body must arrive within this")
     # FHIR R4: string.value has maxLength 1048576 (characters); a deployment may only lower it.
     max_string_chars: int = Field(default=1024 * 1024, gt=0, le=1024 * 1024,
                                   description="longest string (or element name) accepted, in characters")

@@ -10,7 +10,7 @@ from fastapi.responses import Response
 
 from service.config import Settings
 from service.errors import Issue, RequestRejected
-from service.fhir.limits import overlong_strings_outside_entries
+from service.fhir.limits import json_value_count, overlong_strings_outside_entries
 from service.fhir.render import FHIR_JSON, operation_outcome
 
 __all__ = ["fhir_response", "outcome_response", "prefer_return", "read_json"]
@@ -35,7 +35,13 @@ async def read_json(request: Request, *, max_bytes: int) -> tuple[Any, bytes]:
             raise _too_large(size, max_bytes)
         chunks.append(chunk)
     raw = b"".join(chunks)
+    chunks.clear()  # one copy of the body, not two, while it is parsed
     settings: Settings = request.app.state.ctx.settings
+    # Before parsing: a body of many tiny values costs far more memory than its bytes suggest.
+    values = json_value_count(raw, enough=settings.max_json_values)
+    if values > settings.max_json_values:
+        raise RequestRejected([Issue("too-costly", f"request body holds {values} JSON values (objects, arrays and "
+                                     f"primitives); the limit is {settings.max_json_values}", status=413)])
     try:
         body = orjson.loads(raw)
     except orjson.JSONDecodeError as exc:

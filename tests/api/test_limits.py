@@ -113,3 +113,53 @@ def test_an_overlong_element_name_is_refused_without_echoing_it(short_strings: T
 def test_the_string_limit_cannot_be_set_above_fhirs() -> None:
     with pytest.raises(ValueError, match="max_string_chars"):
         Settings(max_string_chars=FHIR_STRING_LIMIT + 1)
+
+
+@pytest.fixture
+def few_values(tmp_path: Path, clock: FixedClock) -> Iterator[TestClient]:
+    yield from small_limits(tmp_path, clock, max_json_values=200)
+
+
+def test_a_request_with_more_json_values_than_the_limit_is_413(few_values: TestClient) -> None:
+    obs = observation("R1", interpretation=[{"text": "normal"}] * 100)  # 201 values on top of the result's
+    r = few_values.post("/fhir/Observation", content=dumps(obs), headers=HEADERS)
+    assert r.status_code == 413
+    issue = issue_of(r.json())
+    assert issue["code"] == "too-costly" and "200" in issue["diagnostics"]
+
+
+def test_commas_and_brackets_inside_strings_are_not_counted_as_values(few_values: TestClient) -> None:
+    obs = observation("R1", note=[{"text": "{[,]} " * 400}])
+    r = few_values.post("/fhir/Observation", content=dumps(obs), headers=HEADERS)
+    assert r.status_code == 201
+
+
+def test_a_full_bundle_of_lab_results_is_within_the_default_value_limit(client: TestClient) -> None:
+    body = bundle("batch", *[observation(f"R{i}", patient=f"Patient/p{i % 20}") for i in range(1000)])
+    r = client.post("/fhir", content=dumps(body), headers=HEADERS)
+    assert r.status_code == 200
+
+
+@pytest.fixture
+def small_bodies(tmp_path: Path, clock: FixedClock) -> Iterator[TestClient]:
+    yield from small_limits(tmp_path, clock, max_body_bytes=2000)
+
+
+def chunks(total: int) -> Iterator[bytes]:
+    """A body sent chunked, without Content-Length: only counting it as it arrives can refuse it."""
+    sent = 0
+    while sent < total:
+        yield b" " * 500
+        sent += 500
+
+
+def test_a_chunked_body_over_the_limit_is_413_on_every_route(small_bodies: TestClient) -> None:
+    r = small_bodies.post("/fhir/Flag/any/$acknowledge", content=chunks(3000), headers=HEADERS)
+    assert r.status_code == 413
+    assert issue_of(r.json())["code"] == "too-costly"
+    assert r.headers["connection"] == "close"
+
+
+def test_a_chunked_bundle_over_the_limit_is_413(small_bodies: TestClient) -> None:
+    r = small_bodies.post("/fhir", content=chunks(3000), headers=HEADERS)
+    assert r.status_code == 413
