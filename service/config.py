@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 from pathlib import Path
+from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import Field, field_validator
@@ -27,6 +28,11 @@ class Settings(BaseSettings):
     lab_timezone: str | None = Field(
         default=None,
         description="IANA zone of the lab clock; when set, date-times without an offset are read in it",
+    )
+    lab_timezone_transitions: Literal["refuse", "accept"] = Field(
+        default="refuse",
+        description="a local time the zone's clock change makes ambiguous or non-existent: refuse it (422), "
+        "or accept it with a warning naming the change",
     )
     max_bundle_entries: int = Field(default=1000, gt=0)
     max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0, description="largest request body, in bytes")

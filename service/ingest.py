@@ -236,7 +236,8 @@ class Ingestor:
             return _Prepared(Kind.IGNORED, [], reason=found.reason)
         # One cheap serialisation tells whether the two tree walks below can find anything at all.
         blob = orjson.dumps(resource)
-        warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone)
+        warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone,
+                                   on_transition=self.settings.lab_timezone_transitions)
                     if OFFSETLESS_JSON.search(blob) else [])
         errors = [w for w in warnings if w.severity == "error"]
         # The models would repeat each offset error less clearly; keep ours.
