@@ -163,3 +163,28 @@ def test_a_chunked_body_over_the_limit_is_413_on_every_route(small_bodies: TestC
 def test_a_chunked_bundle_over_the_limit_is_413(small_bodies: TestClient) -> None:
     r = small_bodies.post("/fhir", content=chunks(3000), headers=HEADERS)
     assert r.status_code == 413
+
+
+def nested_extensions(levels: int) -> bytes:
+    """An Observation whose extension holds an extension ... ``levels`` deep (two JSON levels each)."""
+    inner = b'[{"url": "https://lab.example.org/x", "valueString": "a"}]'
+    nested = b'[{"url": "https://lab.example.org/x", "extension": ' * levels + inner + b"}]" * levels
+    return dumps(observation("R1"))[:-1] + b', "extension": ' + nested + b"}"
+
+
+def test_json_nested_deeper_than_the_serialiser_takes_is_a_400(client: TestClient) -> None:
+    deep = dumps(observation("R1"))[:-1] + b', "extension": ' + b"[" * 300 + b"]" * 300 + b"}"
+    r = client.post("/fhir/Observation", content=deep, headers=HEADERS)
+    assert r.status_code == 400
+    assert "nested" in issue_of(r.json())["diagnostics"]
+
+
+def test_extensions_nested_too_deep_to_validate_are_a_400_not_a_crash(client: TestClient) -> None:
+    r = client.post("/fhir/Observation", content=nested_extensions(125), headers=HEADERS)  # 253 JSON levels
+    assert r.status_code == 400
+    assert issue_of(r.json())["code"] == "structure"
+
+
+def test_extensions_nested_a_few_levels_are_fine(client: TestClient) -> None:
+    r = client.post("/fhir/Observation", content=nested_extensions(3), headers=HEADERS)
+    assert r.status_code == 201
