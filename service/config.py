@@ -35,7 +35,9 @@ class Settings(BaseSettings):
         "or accept it with a warning naming the change",
     )
     max_bundle_entries: int = Field(default=1000, gt=0)
-    max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0, description="largest request body, in bytes")
+    # A full Bundle of 1000 lab results is about 1 MB; each body in progress costs a worker up to about
+    # ten times its size (bench/memory_drill.py), so the limit is also what the memory budget rests on.
+    max_body_bytes: int = Field(default=4 * 1024 * 1024, gt=0, description="largest request body, in bytes")
     # A full Bundle of 1000 lab results is about 52,000 JSON values; memory grows with the count.
     max_json_values: int = Field(default=100_000, gt=0,
                                  description="most JSON values (objects, arrays, primitives) in one request")
