@@ -147,7 +147,7 @@ WORKERS = int(os.environ.get("BENCH_WORKERS", os.cpu_count() or 1))  # `serve --
 
 
 @contextmanager
-def server(data_dir: Path, *, cwd: Path) -> Iterator[Server]:
+def server(data_dir: Path, *, cwd: Path, workers: int = WORKERS) -> Iterator[Server]:
     """A lytestream server on a free loopback port, storing in ``data_dir`` (SQLite); stopped on exit."""
     token = mint_token(data_dir, cwd=cwd)
     port = _free_port()
@@ -155,7 +155,7 @@ def server(data_dir: Path, *, cwd: Path) -> Iterator[Server]:
     log = data_dir.parent / f"{data_dir.name}-server.log"
     env = {**os.environ, "LYTESTREAM_DATA_DIR": str(data_dir), "LYTESTREAM_BASE_URL": f"{base_url}/fhir"}
     cmd = [sys.executable, "-m", "service", "serve", "--host", HOST, "--port", str(port),
-           "--data-dir", str(data_dir), "--workers", str(WORKERS)]
+           "--data-dir", str(data_dir), "--workers", str(workers)]
     with log.open("wb") as out:
         proc = subprocess.Popen(cmd, cwd=cwd, env=env, stdout=out, stderr=subprocess.STDOUT)
     try:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 from pathlib import Path
+from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import Field, field_validator
@@ -28,8 +29,25 @@ class Settings(BaseSettings):
         default=None,
         description="IANA zone of the lab clock; when set, date-times without an offset are read in it",
     )
+    lab_timezone_transitions: Literal["refuse", "accept"] = Field(
+        default="refuse",
+        description="a local time the zone's clock change makes ambiguous or non-existent: refuse it (422), "
+        "or accept it with a warning naming the change",
+    )
     max_bundle_entries: int = Field(default=1000, gt=0)
-    max_body_bytes: int = Field(default=10 * 1024 * 1024, gt=0)
+    # A full Bundle of 1000 lab results is about 1 MB; each body in progress costs a worker up to about
+    # ten times its size (bench/memory_drill.py), so the limit is also what the memory budget rests on.
+    max_body_bytes: int = Field(default=4 * 1024 * 1024, gt=0, description="largest request body, in bytes")
+    # A full Bundle of 1000 lab results is about 52,000 JSON values; memory grows with the count.
+    max_json_values: int = Field(default=100_000, gt=0,
+                                 description="most JSON values (objects, arrays, primitives) in one request")
+    max_concurrent_bodies: int = Field(default=2, gt=0,
+                                       description="requests per worker reading and processing a body at once")
+    body_timeout_seconds: float = Field(default=10.0, gt=0,
+                                        description="the whole request body must arrive within this")
+    # FHIR R4: string.value has maxLength 1048576 (characters); a deployment may only lower it.
+    max_string_chars: int = Field(default=1024 * 1024, gt=0, le=1024 * 1024,
+                                  description="longest string (or element name) accepted, in characters")
     lookback_hours: float = Field(default=72.0, gt=0, description="how far back the timeline reaches")
     page_size_default: int = Field(default=50, gt=0)
     page_size_max: int = Field(default=500, gt=0)

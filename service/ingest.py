@@ -32,6 +32,7 @@ from service.errors import Issue, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
 from service.fhir.collection_time import check_not_future
 from service.fhir.datetimes import OFFSETLESS_JSON, fix_offsetless
+from service.fhir.limits import overlong_strings
 from service.fhir.normalise import (
     IncomingInsulin,
     IncomingObservation,
@@ -121,7 +122,7 @@ class Ingestor:
                requester: Requester | None = None) -> EntryResult:
         """A single create or conditional update; RequestRejected if it cannot be taken."""
         try:
-            prepared = self._prepare(entry, {}, set())
+            prepared = self._prepare(entry, {}, set(), long_strings=self._may_hold_long_strings(raw))
             with self.db.session(write=True) as session:
                 results = self._store(session, [prepared], raw=raw, interaction=interaction)
                 self._audit(session, requester, interaction, results)
@@ -134,11 +135,12 @@ class Ingestor:
                     requester: Requester | None = None) -> list[EntryResult]:
         """All entries or none: RequestRejected lists every issue found, nothing is written."""
         identities, full_urls = self._bundle_identities(entries)
+        long_strings = self._may_hold_long_strings(raw)
         prepared: list[_Prepared] = []
         issues: list[Issue] = []
         for e in entries:
             try:
-                prepared.append(self._prepare(e, identities, full_urls))
+                prepared.append(self._prepare(e, identities, full_urls, long_strings=long_strings))
             except Invalid as exc:
                 issues += exc.issues
         issues += _duplicate_identities(entries, prepared) if not issues else []
@@ -157,11 +159,12 @@ class Ingestor:
               requester: Requester | None = None) -> list[EntryResult]:
         """Each entry on its own: a bad one is reported in its slot and the others are kept."""
         identities, full_urls = self._bundle_identities(entries)
+        long_strings = self._may_hold_long_strings(raw)
         results: list[EntryResult | None] = [None] * len(entries)
         good: list[tuple[int, _Prepared]] = []
         for i, e in enumerate(entries):
             try:
-                good.append((i, self._prepare(e, identities, full_urls)))
+                good.append((i, self._prepare(e, identities, full_urls, long_strings=long_strings)))
             except Invalid as exc:
                 results[i] = _failed(exc.issues)
         with self.db.session(write=True) as session:
@@ -221,12 +224,22 @@ class Ingestor:
                 identities[e.full_url] = patient_entry_aliases(normalise_patient(e.resource, e.root), e.url)
         return identities, full_urls
 
-    def _prepare(self, e: EntryRequest, identities: BundleIdentities, full_urls: set[str]) -> _Prepared:
+    def _may_hold_long_strings(self, raw: bytes) -> bool:
+        """A string cannot have more characters than the request has bytes: most requests need no look."""
+        return len(raw) > self.settings.max_string_chars
+
+    def _prepare(self, e: EntryRequest, identities: BundleIdentities, full_urls: set[str], *,
+                 long_strings: bool = False) -> _Prepared:
         if e.refused is not None:
             raise Invalid([e.refused])
         resource = e.resource
         if not isinstance(resource, dict):
             raise Invalid([Issue("structure", "a resource (JSON object) is required", (e.root,))])
+        if long_strings:
+            # Before triage: the limit holds for resources that are dropped unvalidated too.
+            overlong = overlong_strings(resource, e.root, self.settings.max_string_chars)
+            if overlong:
+                raise Invalid(overlong)
         rtype = resource.get("resourceType")
         if not isinstance(rtype, str):
             raise Invalid([Issue("structure", "resourceType is missing", (f"{e.root}.resourceType",))])
@@ -236,7 +249,8 @@ class Ingestor:
             return _Prepared(Kind.IGNORED, [], reason=found.reason)
         # One cheap serialisation tells whether the two tree walks below can find anything at all.
         blob = orjson.dumps(resource)
-        warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone)
+        warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone,
+                                   on_transition=self.settings.lab_timezone_transitions)
                     if OFFSETLESS_JSON.search(blob) else [])
         errors = [w for w in warnings if w.severity == "error"]
         # The models would repeat each offset error less clearly; keep ours.

@@ -16,6 +16,7 @@ from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
+from service.api.intake import BodyAborted, BodyIntake
 from service.api.refusals import RefusalAudit, RefusalLimiter
 from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
 from service.arrivals import ArrivalReview
@@ -76,6 +77,8 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs" if docs else None, redoc_url=None,
                   openapi_url="/openapi.json" if docs else None, lifespan=lifespan)
     app.state.ctx = ctx
+    app.add_middleware(BodyIntake, max_body_bytes=ctx.settings.max_body_bytes,
+                       timeout_s=ctx.settings.body_timeout_seconds, slots=ctx.settings.max_concurrent_bodies)
     authenticator = Authenticator(ctx.settings.auth, db=ctx.db, clock=ctx.clock)
     install_auth(app, authenticator, on_refused=RefusalAudit(db=ctx.db, clock=ctx.clock,
                                                              base_url=ctx.settings.base_url, limiter=ctx.refusals))
@@ -90,7 +93,17 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     @app.exception_handler(RequestRejected)
     async def _rejected(_: Request, exc: RequestRejected) -> Response:
         log.info("request rejected: status=%s issues=%d", exc.status, len(exc.issues))
-        return outcome_response(exc.issues, exc.status)
+        response = outcome_response(exc.issues, exc.status)
+        if exc.status in (408, 413):
+            # The rest of the body may still be on its way: do not read it as the next request.
+            response.headers["connection"] = "close"
+        return response
+
+    @app.exception_handler(BodyAborted)
+    async def _aborted(_: Request, exc: BodyAborted) -> Response:
+        # An expected event on a network, not a fault: one line, no traceback, no content.
+        log.warning("request body aborted by the client after %d bytes; nothing stored", exc.received)
+        return outcome_response([Issue("incomplete", "the request body was not complete")], 400)
 
     @app.exception_handler(NotFound)
     async def _not_found(_: Request, exc: NotFound) -> Response:

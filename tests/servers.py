@@ -7,10 +7,11 @@ import socket
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import httpx
 
-__all__ = ["clean_env", "free_port", "start_server"]
+__all__ = ["clean_env", "free_port", "mint_token", "start_server"]
 
 
 def free_port() -> int:
@@ -25,10 +26,24 @@ def clean_env(**settings: str) -> dict[str, str]:
     return {**base, **settings}
 
 
-def start_server(port: int, *args: str, env: dict[str, str] | None = None) -> subprocess.Popen[bytes]:
-    """`lytestream serve` on 127.0.0.1:port, returned once /readyz answers (30 s at most)."""
+def mint_token(data_dir: Path, scope: str = "system/*.cruds") -> str:
+    """A token from `lytestream token create`, which prints it alone on standard output."""
+    out = subprocess.run([sys.executable, "-m", "service", "token", "create", "--client", "drill", "--scope", scope,
+                          "--data-dir", str(data_dir)], capture_output=True, check=True, text=True, env=clean_env())
+    return out.stdout.strip()
+
+
+def start_server(port: int, *args: str, env: dict[str, str] | None = None,
+                 log: Path | None = None) -> subprocess.Popen[bytes]:
+    """`lytestream serve` on 127.0.0.1:port, returned once /readyz answers (30 s at most).
+
+    With ``log``, the server's standard error (its log) is written there.
+    """
+    err = log.open("wb") if log else subprocess.DEVNULL
     proc = subprocess.Popen([sys.executable, "-m", "service", "serve", "--port", str(port), *args],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env or clean_env())
+                            stdout=subprocess.DEVNULL, stderr=err, env=env or clean_env())
+    if log:
+        err.close()  # type: ignore[union-attr]
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
         try:

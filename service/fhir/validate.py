@@ -77,6 +77,9 @@ def _run(model: Any, resource: dict[str, Any], root: str) -> list[Issue]:
         model.model_validate(resource)
     except ValidationError as exc:
         return [_issue(err, root) for err in exc.errors(include_url=False)]
+    except RecursionError:
+        # Elements nested a hundred deep (extensions in extensions) exhaust the models' stack.
+        return [Issue("structure", "elements are nested too deeply to validate", (root,))]
     return []
 
 
