@@ -44,6 +44,11 @@ class Settings(BaseSettings):
     delivery_base_seconds: float = Field(default=2.0, gt=0, description="first retry waits up to this")
     delivery_cap_seconds: float = Field(default=300.0, gt=0, description="no retry waits longer")
     delivery_max_attempts: int = Field(default=12, gt=0, description="then the subscription goes to error")
+    delivery_lease_seconds: float = Field(
+        default=10.0, gt=0,
+        description="a replica's claim on a subscription lapses this long after its last send unless renewed "
+                    "(never shorter than the send timeout + 2 s); another replica takes over after it",
+    )
 
     @field_validator("lab_timezone")
     @classmethod

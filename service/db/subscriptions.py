@@ -2,8 +2,11 @@
 
 Event numbers are taken from the subscription row inside the transaction that writes the Flag
 change, so numbers have no gaps and follow commit order per subscription. Delivery claims a
-subscription with a lease (a conditional UPDATE … RETURNING, portable to SQLite and PostgreSQL):
-one replica at a time sends a subscription's rows, in number order.
+subscription with a lease: ``lease_owner`` holds a token fresh for each claim (a fencing token) and
+``lease_until`` when the claim lapses. The holder renews the lease as it records each send, in a
+transaction that locks the subscription row and first checks the token is still its own
+(``hold_lease``), so a replica whose lease lapsed and was taken over records nothing more: one
+replica at a time sends a subscription's rows, in number order.
 """
 
 from __future__ import annotations
@@ -25,6 +28,7 @@ __all__ = [
     "create_subscription",
     "enqueue_events",
     "enqueue_heartbeats",
+    "hold_lease",
     "load_spec",
     "pending_events",
     "release",
@@ -123,21 +127,38 @@ def enqueue_heartbeats(*, session: Session, now: datetime) -> int:
     return queued
 
 
-def claim_subscriptions(*, session: Session, owner: str, now: datetime, lease: timedelta) -> list[str]:
-    """Lease the subscriptions that have a due row and no live lease; returns their ids."""
+def claim_subscriptions(*, session: Session, token: str, now: datetime, lease: timedelta) -> list[str]:
+    """Lease to ``token`` the subscriptions that have a due row and no live lease; returns their ids.
+
+    The rows are locked in id order and rows another transaction has locked are skipped (PostgreSQL
+    ``SKIP LOCKED``; SQLite has one writer anyway): an ingest numbering new events holds them for a
+    moment, and the next pass claims them instead of queueing behind it or deadlocking with it.
+    """
     due = select(_E.c.subscription_id).where(_E.c.status == "pending", _E.c.next_attempt_at <= now)
-    result = session.execute(
-        update(_S)
-        .where(_S.c.id.in_(due), _S.c.status.in_(("requested", "active")),
-               or_(_S.c.lease_until.is_(None), _S.c.lease_until < now))
-        .values(lease_owner=owner, lease_until=now + lease)
-        .returning(_S.c.id)
-    )
-    return sorted(r[0] for r in result)
+    free = (select(_S.c.id)
+            .where(_S.c.id.in_(due), _S.c.status.in_(("requested", "active")),
+                   or_(_S.c.lease_until.is_(None), _S.c.lease_until < now))
+            .order_by(_S.c.id).with_for_update(skip_locked=True))
+    ids = [r[0] for r in session.execute(free)]
+    if ids:
+        session.execute(update(_S).where(_S.c.id.in_(ids)).values(lease_owner=token, lease_until=now + lease))
+    return ids
 
 
-def release(*, session: Session, subscription_id: str, owner: str) -> None:
-    session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == owner)
+def hold_lease(*, session: Session, subscription_id: str, token: str, until: datetime,
+               values: dict[str, Any] | None = None) -> Any | None:
+    """If ``token`` still holds the subscription's lease, extend it to ``until`` and set ``values``.
+
+    One conditional UPDATE: it locks the row, and a claim that committed meanwhile makes its
+    condition false. Returns the row as updated, or None when the lease has passed to another claim:
+    the caller must then record nothing, since the new holder owns the subscription's rows.
+    """
+    return session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == token)
+                           .values(lease_until=until, **(values or {})).returning(*_S.c)).first()
+
+
+def release(*, session: Session, subscription_id: str, token: str) -> None:
+    session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == token)
                     .values(lease_owner=None, lease_until=None))
 
 
