@@ -9,9 +9,14 @@ succeeds makes a ``requested`` subscription ``active``.
 Replicas share the work through leases (``service.db.subscriptions``). A send starts only while the
 lease outlasts the send's timeout by ``_SEND_ROOM``, so the holder is still the holder when the answer
 comes back; recording the answer re-checks the lease's token under a row lock and renews it. A pass
-works round-robin, ``_BATCH`` rows per subscription per round, claiming again every round: one busy
-subscription does not hold up the others, and a crashed replica's subscriptions are picked up
-within a round once its leases lapse.
+works round-robin, ``_BATCH`` rows per subscription per round, claiming one more subscription every
+round: one busy subscription does not hold up the others, replicas share the subscriptions, and a
+crashed replica's subscriptions are picked up within a round once its leases lapse (the lease, at
+least the send timeout + 2 s, bounds that wait).
+
+While a high-priority Flag's notification is queued, retries follow the urgent schedule (no wait
+above ``delivery_urgent_cap_seconds``), and a retry already scheduled further out is brought
+forward to it: once the endpoint is back, the page goes out within that cap plus a pass.
 
 Delivery is at-least-once: a crash between the POST and recording it resends that row with its
 number, and the subscriber drops the duplicate by number.
@@ -20,7 +25,9 @@ number, and the subscriber drops the duplicate by number.
 from __future__ import annotations
 
 import logging
+import os
 import random
+import socket
 import time
 import uuid
 from dataclasses import dataclass
@@ -36,12 +43,14 @@ from service.config import Settings
 from service.db.engine import Database
 from service.db.subscriptions import (
     claim_subscriptions,
+    expedite_urgent,
     flag_version,
     hold_lease,
     load_spec,
     pending_events,
     record_attempt,
     release,
+    urgent_pending,
 )
 from service.db.tables import SubscriptionRecord
 from service.notify.backoff import GiveUp, RetryPolicy, next_attempt_at
@@ -73,6 +82,10 @@ def subscription_state(row: Any, base: str) -> SubscriptionState:
 # for a little clock difference between replicas (their clocks are assumed NTP-synchronised).
 _SEND_ROOM = timedelta(seconds=1)
 _BATCH = 20  # rows per subscription per round
+# New claims per round. One: a replica that is already busy leaves the rest to replicas that are
+# idle (their scheduler ticks fall between its rounds), instead of taking every due subscription
+# at once and keeping the others out.
+_CLAIMS_PER_ROUND = 1
 _PASS_SECONDS = 5.0  # a pass stops starting new rounds after this (the scheduler runs it again)
 
 
@@ -92,10 +105,12 @@ class Dispatcher:
     owner: str = ""
 
     def __post_init__(self) -> None:
-        self.owner = self.owner or uuid.uuid4().hex
+        # Host and process first, so an operator (or a drill) can tell which replica holds a lease.
+        self.owner = self.owner or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
         s = self.settings
         self.policy = RetryPolicy(base_s=s.delivery_base_seconds, cap_s=max(s.delivery_cap_seconds,
-                                  s.delivery_base_seconds), max_attempts=s.delivery_max_attempts)
+                                  s.delivery_base_seconds), max_attempts=s.delivery_max_attempts,
+                                  urgent_cap_s=s.delivery_urgent_cap_seconds)
 
     def _hold(self, timeout_s: float) -> timedelta:
         """How long a lease is taken or renewed for: the setting, but always enough for one send."""
@@ -110,7 +125,7 @@ class Dispatcher:
         stop_at = time.monotonic() + _PASS_SECONDS
         try:
             while True:
-                self._claim(held)
+                claimed = self._claim(held)
                 if not held:
                     return sent
                 progressed = False
@@ -120,19 +135,24 @@ class Dispatcher:
                     progressed = progressed or n > 0
                     if not more:
                         self._release(sid, held.pop(sid))
-                if not progressed or time.monotonic() >= stop_at:
+                if not (progressed or claimed) or time.monotonic() >= stop_at:
                     return sent
         finally:
             for sid, lease in held.items():
                 self._release(sid, lease)
 
-    def _claim(self, held: dict[str, _Lease]) -> None:
+    def _claim(self, held: dict[str, _Lease]) -> int:
+        """Claim up to ``_CLAIMS_PER_ROUND`` more subscriptions into ``held``; returns how many."""
         now = self.clock.now()
         token = f"{self.owner}:{uuid.uuid4().hex[:12]}"  # fresh per claim: the fencing token
         hold = self._hold(self.settings.delivery_timeout_seconds)
         with self.db.session(write=True) as session:
-            for sid in claim_subscriptions(session=session, token=token, now=now, lease=hold):
-                held[sid] = _Lease(token, now + hold)
+            expedite_urgent(session=session, by=now + timedelta(seconds=self.policy.cap(urgent=True)))
+            claimed = claim_subscriptions(session=session, token=token, now=now, lease=hold,
+                                          limit=_CLAIMS_PER_ROUND)
+        for sid in claimed:
+            held[sid] = _Lease(token, now + hold)
+        return len(claimed)
 
     def _release(self, sid: str, lease: _Lease) -> None:
         with self.db.session(write=True) as session:
@@ -167,11 +187,11 @@ class Dispatcher:
             outcome = deliver(self.client, endpoint=spec.endpoint, headers=spec.headers,
                               content_type=spec.payload_mime, body=orjson.dumps(body), timeout_s=timeout_s)
             done = self.clock.now()
-            decision = None if outcome.ok else next_attempt_at(
-                done, row.attempts + 1, policy=self.policy, rng=self.rng, retryable=outcome.retryable,
-                retry_after_s=outcome.retry_after_s)
-            give_up = isinstance(decision, GiveUp)
             with self.db.session(write=True) as session:
+                decision = None if outcome.ok else next_attempt_at(
+                    done, row.attempts + 1, policy=self.policy, rng=self.rng, retryable=outcome.retryable,
+                    retry_after_s=outcome.retry_after_s, urgent=urgent_pending(session=session, subscription_id=sid))
+                give_up = isinstance(decision, GiveUp)
                 current = hold_lease(session=session, subscription_id=sid, token=lease.token, until=done + hold,
                                      values=_after(row, outcome.ok, give_up, outcome.error, done))
                 if current is not None:

@@ -17,10 +17,10 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import orjson
-from sqlalchemy import and_, case, insert, or_, select, update
+from sqlalchemy import and_, case, func, insert, or_, select, update
 from sqlmodel import Session
 
-from service.db.tables import DeliveryAttempt, FhirVersion, SubscriptionEvent, SubscriptionRecord
+from service.db.tables import DeliveryAttempt, FhirVersion, FlagRecord, SubscriptionEvent, SubscriptionRecord
 from service.notify.topics import SubscriptionSpec, matches, parse_subscription
 
 __all__ = [
@@ -28,17 +28,20 @@ __all__ = [
     "create_subscription",
     "enqueue_events",
     "enqueue_heartbeats",
+    "expedite_urgent",
     "hold_lease",
     "load_spec",
     "pending_events",
     "release",
     "served_subscription",
+    "urgent_pending",
 ]
 
 _S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
 _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 _A = DeliveryAttempt.__table__  # type: ignore[attr-defined]
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
+_F = FlagRecord.__table__  # type: ignore[attr-defined]
 # Still counting while in error (the IG: keep incrementing eventsSinceSubscriptionStart).
 _COUNTING = ("requested", "active", "error")
 
@@ -127,18 +130,26 @@ def enqueue_heartbeats(*, session: Session, now: datetime) -> int:
     return queued
 
 
-def claim_subscriptions(*, session: Session, token: str, now: datetime, lease: timedelta) -> list[str]:
-    """Lease to ``token`` the subscriptions that have a due row and no live lease; returns their ids.
+def claim_subscriptions(*, session: Session, token: str, now: datetime, lease: timedelta,
+                        limit: int | None = None) -> list[str]:
+    """Lease to ``token`` (at most ``limit`` of) the subscriptions that have a due row and no live
+    lease; returns their ids.
 
     The rows are locked in id order and rows another transaction has locked are skipped (PostgreSQL
     ``SKIP LOCKED``; SQLite has one writer anyway): an ingest numbering new events holds them for a
     moment, and the next pass claims them instead of queueing behind it or deadlocking with it.
     """
-    due = select(_E.c.subscription_id).where(_E.c.status == "pending", _E.c.next_attempt_at <= now)
+    # Due: every unsent row is due (a waiting retry holds back the rows behind it, so a replica
+    # claiming such a subscription would only find it cannot send), or a handshake is due (it goes
+    # first whatever waits).
+    due = (select(_E.c.subscription_id).where(_E.c.status == "pending").group_by(_E.c.subscription_id)
+           .having(or_(func.max(_E.c.next_attempt_at) <= now,
+                       func.max(case((and_(_E.c.kind == "handshake", _E.c.next_attempt_at <= now), 1),
+                                     else_=0)) == 1)))
     free = (select(_S.c.id)
             .where(_S.c.id.in_(due), _S.c.status.in_(("requested", "active")),
                    or_(_S.c.lease_until.is_(None), _S.c.lease_until < now))
-            .order_by(_S.c.id).with_for_update(skip_locked=True))
+            .order_by(_S.c.id).limit(limit).with_for_update(skip_locked=True))
     ids = [r[0] for r in session.execute(free)]
     if ids:
         session.execute(update(_S).where(_S.c.id.in_(ids)).values(lease_owner=token, lease_until=now + lease))
@@ -155,6 +166,32 @@ def hold_lease(*, session: Session, subscription_id: str, token: str, until: dat
     """
     return session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == token)
                            .values(lease_until=until, **(values or {})).returning(*_S.c)).first()
+
+
+def _urgent(subscription_id: Any) -> Any:
+    """There is an unsent event of this subscription about a high-priority Flag."""
+    e = _E.alias("urgent_event")
+    return (select(e.c.id).join(_F, _F.c.id == e.c.focus_id)
+            .where(e.c.subscription_id == subscription_id, e.c.status == "pending", _F.c.priority == "high")
+            .exists())
+
+
+def urgent_pending(*, session: Session, subscription_id: str) -> bool:
+    """Whether a high-priority Flag's notification is among the subscription's unsent rows."""
+    return bool(session.execute(select(_urgent(subscription_id))).scalar())
+
+
+def expedite_urgent(*, session: Session, by: datetime) -> int:
+    """Bring every retry scheduled after ``by`` forward to ``by`` where a high-priority Flag's
+    notification waits behind it; returns the rows changed.
+
+    Only rows that failed before are waiting; a high-priority event queued behind a row whose
+    backoff has grown long would otherwise wait out that backoff too (nothing overtakes).
+    """
+    result = session.execute(update(_E).where(_E.c.status == "pending", _E.c.attempts > 0, _E.c.next_attempt_at > by,
+                                              _urgent(_E.c.subscription_id))
+                             .values(next_attempt_at=by))
+    return int(result.rowcount or 0)  # type: ignore[attr-defined]
 
 
 def release(*, session: Session, subscription_id: str, token: str) -> None:
