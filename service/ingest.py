@@ -109,10 +109,13 @@ class Ingestor:
         """A single create or conditional update; RequestRejected if it cannot be taken."""
         try:
             prepared = self._prepare(entry, {}, set())
-            with self.db.session(write=True) as session:
+
+            def work(session: Session) -> EntryResult:
                 results = self._store(session, [prepared], raw=raw, interaction=interaction)
                 self._audit(session, requester, interaction, results)
                 return results[0]
+
+            return self.db.unit_of_work(work)
         except Invalid as exc:
             self._audit_refusal(requester, interaction, 1)
             raise RequestRejected(exc.issues) from exc
@@ -132,10 +135,13 @@ class Ingestor:
         try:
             if issues:
                 raise Invalid(issues)
-            with self.db.session(write=True) as session:
+
+            def work(session: Session) -> list[EntryResult]:
                 results = self._store(session, prepared, raw=raw, interaction="transaction")
                 self._audit(session, requester, "transaction", results)
                 return results
+
+            return self.db.unit_of_work(work)
         except Invalid as exc:
             self._audit_refusal(requester, "transaction", len(entries))
             raise RequestRejected(exc.issues) from exc
@@ -144,14 +150,16 @@ class Ingestor:
               requester: Requester | None = None) -> list[EntryResult]:
         """Each entry on its own: a bad one is reported in its slot and the others are kept."""
         identities, full_urls = self._bundle_identities(entries)
-        results: list[EntryResult | None] = [None] * len(entries)
+        refused: list[EntryResult | None] = [None] * len(entries)
         good: list[tuple[int, _Prepared]] = []
         for i, e in enumerate(entries):
             try:
                 good.append((i, self._prepare(e, identities, full_urls)))
             except Invalid as exc:
-                results[i] = _failed(exc.issues)
-        with self.db.session(write=True) as session:
+                refused[i] = _failed(exc.issues)
+
+        def work(session: Session) -> list[EntryResult]:
+            results = list(refused)  # afresh on each attempt
             try:
                 with session.begin_nested():
                     stored = self._store(session, [p for _, p in good], raw=raw, interaction="batch")
@@ -173,7 +181,9 @@ class Ingestor:
                         )
             done = [r for r in results if r is not None]
             self._audit(session, requester, "batch", done)
-        return done
+            return done
+
+        return self.db.unit_of_work(work)
 
     # -- audit -----------------------------------------------------------------------------
 
