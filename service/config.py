@@ -66,10 +66,25 @@ class Settings(BaseSettings):
     recheck_seconds: float = Field(default=60.0, gt=0, description="how often time-driven flags are rechecked")
     deliver_seconds: float = Field(default=2.0, gt=0, description="how often the outbox is drained")
     allow_http_endpoints: bool = Field(default=False, description="accept plain-http rest-hook endpoints")
-    delivery_timeout_seconds: float = Field(default=10.0, gt=0)
+    # 5 s: a paging endpoint that has not answered by then has failed this try, and the lease (which
+    # must outlast a send) stays short, so a crashed replica's subscriptions are taken over sooner.
+    delivery_timeout_seconds: float = Field(default=5.0, gt=0, description="one notification POST, at most")
     delivery_base_seconds: float = Field(default=2.0, gt=0, description="first retry waits up to this")
     delivery_cap_seconds: float = Field(default=300.0, gt=0, description="no retry waits longer")
-    delivery_max_attempts: int = Field(default=12, gt=0, description="then the subscription goes to error")
+    delivery_max_attempts: int = Field(
+        default=12, gt=0,
+        description="then the subscription goes to error (with a high-priority Flag queued: as many attempts "
+                    "as keep it trying as long at the urgent cap)",
+    )
+    delivery_urgent_cap_seconds: float = Field(
+        default=10.0, gt=0,
+        description="no retry waits longer while a high-priority Flag's notification is queued",
+    )
+    delivery_lease_seconds: float = Field(
+        default=10.0, gt=0,
+        description="a replica's claim on a subscription lapses this long after its last send unless renewed "
+                    "(never shorter than the send timeout + 2 s); another replica takes over after it",
+    )
 
     @field_validator("lab_timezone")
     @classmethod

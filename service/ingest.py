@@ -123,10 +123,13 @@ class Ingestor:
         """A single create or conditional update; RequestRejected if it cannot be taken."""
         try:
             prepared = self._prepare(entry, {}, set(), long_strings=self._may_hold_long_strings(raw))
-            with self.db.session(write=True) as session:
+
+            def work(session: Session) -> EntryResult:
                 results = self._store(session, [prepared], raw=raw, interaction=interaction)
                 self._audit(session, requester, interaction, results)
                 return results[0]
+
+            return self.db.unit_of_work(work)
         except Invalid as exc:
             self._audit_refusal(requester, interaction, 1)
             raise RequestRejected(exc.issues) from exc
@@ -147,10 +150,13 @@ class Ingestor:
         try:
             if issues:
                 raise Invalid(issues)
-            with self.db.session(write=True) as session:
+
+            def work(session: Session) -> list[EntryResult]:
                 results = self._store(session, prepared, raw=raw, interaction="transaction")
                 self._audit(session, requester, "transaction", results)
                 return results
+
+            return self.db.unit_of_work(work)
         except Invalid as exc:
             self._audit_refusal(requester, "transaction", len(entries))
             raise RequestRejected(exc.issues) from exc
@@ -160,14 +166,16 @@ class Ingestor:
         """Each entry on its own: a bad one is reported in its slot and the others are kept."""
         identities, full_urls = self._bundle_identities(entries)
         long_strings = self._may_hold_long_strings(raw)
-        results: list[EntryResult | None] = [None] * len(entries)
+        refused: list[EntryResult | None] = [None] * len(entries)
         good: list[tuple[int, _Prepared]] = []
         for i, e in enumerate(entries):
             try:
                 good.append((i, self._prepare(e, identities, full_urls, long_strings=long_strings)))
             except Invalid as exc:
-                results[i] = _failed(exc.issues)
-        with self.db.session(write=True) as session:
+                refused[i] = _failed(exc.issues)
+
+        def work(session: Session) -> list[EntryResult]:
+            results = list(refused)  # afresh on each attempt
             try:
                 with session.begin_nested():
                     stored = self._store(session, [p for _, p in good], raw=raw, interaction="batch")
@@ -189,7 +197,9 @@ class Ingestor:
                         )
             done = [r for r in results if r is not None]
             self._audit(session, requester, "batch", done)
-        return done
+            return done
+
+        return self.db.unit_of_work(work)
 
     # -- audit -----------------------------------------------------------------------------
 

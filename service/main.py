@@ -23,7 +23,7 @@ from service.arrivals import ArrivalReview
 from service.auth.deps import Authenticator, install_auth
 from service.clock import Clock, SystemClock
 from service.config import Settings
-from service.db.engine import Database
+from service.db.engine import Database, StoreBusy
 from service.dispatch import Dispatcher
 from service.errors import Issue, NotFound, RequestRejected
 from service.evaluation import Evaluator
@@ -117,6 +117,16 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     @app.exception_handler(RequestValidationError)
     async def _invalid(_: Request, exc: RequestValidationError) -> Response:
         return outcome_response([Issue("invalid", "request parameters are not valid")], 400)
+
+    @app.exception_handler(StoreBusy)
+    async def _busy(_: Request, exc: StoreBusy) -> Response:
+        # Lost a database race on every attempt: nothing stored, and sending it again will work.
+        log.warning("store busy: %s", exc)
+        response = outcome_response([Issue("transient", "the database was busy with concurrent requests; "
+                                           "nothing from this request was stored; send it again",
+                                           severity="error")], 503)
+        response.headers["Retry-After"] = "1"
+        return response
 
     @app.exception_handler(Exception)
     async def _crash(_: Request, exc: Exception) -> Response:

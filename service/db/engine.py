@@ -6,23 +6,51 @@ lock of our own (a thread lock plus an ``flock`` on a file beside the database, 
 queue too): a waiting writer then wakes the moment the lock is free, instead of sleeping in
 SQLite's busy handler, which left the database idle and gave multi-second tail latencies. PostgreSQL: writers take a
 transaction-scoped advisory lock per patient, in key order so two requests cannot deadlock.
+
+A unit of work that still loses a deadlock or a serialisation check (PostgreSQL SQLSTATE 40P01,
+40001) is rolled back and run again whole (``Database.unit_of_work``, bounded); if it keeps losing,
+``StoreBusy`` says so, and the API answers 503 with Retry-After rather than a 500.
 """
 
 from __future__ import annotations
 
 import fcntl
+import logging
 import os
+import random
 import threading
-from collections.abc import Iterable, Iterator
+import time
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager, nullcontext
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
+from sqlalchemy.exc import DBAPIError
 from sqlmodel import Session
 
-__all__ = ["Database"]
+__all__ = ["Database", "StoreBusy", "transient_sqlstate"]
+
+T = TypeVar("T")
+log = logging.getLogger("lytestream.db")
+
+# deadlock_detected, serialization_failure: the transaction lost a race, not a fault of its data.
+_TRANSIENT = frozenset({"40P01", "40001"})
+_ATTEMPTS = 5  # waits of at most 20, 40, 80, 160 ms between them
+
+
+class StoreBusy(Exception):
+    """A unit of work lost a deadlock or serialisation race on every attempt: nothing was stored."""
+
+
+def transient_sqlstate(exc: BaseException) -> str | None:
+    """The SQLSTATE when ``exc`` is a lost race that running the work again can win, else None."""
+    if isinstance(exc, DBAPIError):
+        code = getattr(exc.orig, "sqlstate", None)
+        if code in _TRANSIENT:
+            return str(code)
+    return None
 
 
 class Database:
@@ -57,6 +85,26 @@ class Database:
                 raise
             finally:
                 session.close()
+
+    def unit_of_work(self, work: Callable[[Session], T]) -> T:
+        """``work`` in one write unit of work; run again whole if it loses a deadlock or serialisation race.
+
+        ``work`` must start from scratch each time (everything it wrote was rolled back).
+        """
+        for attempt in range(1, _ATTEMPTS + 1):
+            try:
+                with self.session(write=True) as session:
+                    return work(session)
+            except DBAPIError as exc:
+                code = transient_sqlstate(exc)
+                if code is None:
+                    raise
+                log.warning("unit of work lost a race (SQLSTATE %s), attempt %d of %d", code, attempt, _ATTEMPTS)
+                if attempt == _ATTEMPTS:
+                    raise StoreBusy(f"lost a database race {_ATTEMPTS} times (SQLSTATE {code})") from exc
+                # Jittered, so two requests that deadlocked do not meet again at the same moment.
+                time.sleep(random.uniform(0.0, 0.01 * 2**attempt))
+        raise AssertionError("unreachable")
 
     def lock_patients(self, session: Session, patient_keys: Iterable[str]) -> None:
         """Serialise work on these patients until the transaction ends.

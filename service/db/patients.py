@@ -5,7 +5,7 @@ from __future__ import annotations
 import uuid
 from collections.abc import Sequence
 
-from sqlalchemy import select
+from sqlalchemy import select, text
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlmodel import Session
@@ -35,9 +35,19 @@ def resolve_patients(*, session: Session, groups: Sequence[tuple[str, ...]]) -> 
     """One patient key per group of aliases; unknown patients get a new key, new aliases are linked.
 
     Raises IdentityConflict (with the group's index) when a group's known aliases disagree.
+
+    PostgreSQL: the aliases not yet known are locked first (transaction-scoped advisory locks, in
+    sorted order, so two requests introducing the same new patients queue instead of deadlocking on
+    each other's uncommitted alias rows) and looked up again once held: whoever comes second sees
+    the first one's links. Known aliases need no lock: an alias, once linked, never changes.
     """
     wanted = {a for g in groups for a in g}
     known = _lookup(session, wanted)
+    new = wanted - known.keys()
+    if new and session.get_bind().dialect.name == "postgresql":
+        for alias in sorted(new):
+            session.execute(text("SELECT pg_advisory_xact_lock(hashtextextended(:k, 0))"), {"k": f"alias:{alias}"})
+        known |= _lookup(session, new)
     keys: list[str] = []
     pending: dict[str, str] = {}
     for index, group in enumerate(groups):
@@ -51,8 +61,9 @@ def resolve_patients(*, session: Session, groups: Sequence[tuple[str, ...]]) -> 
         keys.append(key)
     if pending:
         stmt = _insert(session).on_conflict_do_nothing(index_elements=["alias"])
-        session.execute(stmt, [{"alias": a, "patient_key": k} for a, k in pending.items()])
-        # Another replica may have linked an alias first: read back and redo with what won.
+        # In alias order, the same order as the locks (one global order for the unique index too).
+        session.execute(stmt, [{"alias": a, "patient_key": pending[a]} for a in sorted(pending)])
+        # A guard (the locks make it moot): if an alias was linked first elsewhere, redo with what won.
         if session.get_bind().dialect.name != "sqlite":
             won = _lookup(session, set(pending))
             if any(won[a] != k for a, k in pending.items()):

@@ -2,8 +2,11 @@
 
 Event numbers are taken from the subscription row inside the transaction that writes the Flag
 change, so numbers have no gaps and follow commit order per subscription. Delivery claims a
-subscription with a lease (a conditional UPDATE … RETURNING, portable to SQLite and PostgreSQL):
-one replica at a time sends a subscription's rows, in number order.
+subscription with a lease: ``lease_owner`` holds a token fresh for each claim (a fencing token) and
+``lease_until`` when the claim lapses. The holder renews the lease as it records each send, in a
+transaction that locks the subscription row and first checks the token is still its own
+(``hold_lease``), so a replica whose lease lapsed and was taken over records nothing more: one
+replica at a time sends a subscription's rows, in number order.
 """
 
 from __future__ import annotations
@@ -14,10 +17,10 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import orjson
-from sqlalchemy import and_, case, insert, or_, select, update
+from sqlalchemy import and_, case, func, insert, or_, select, update
 from sqlmodel import Session
 
-from service.db.tables import DeliveryAttempt, FhirVersion, SubscriptionEvent, SubscriptionRecord
+from service.db.tables import DeliveryAttempt, FhirVersion, FlagRecord, SubscriptionEvent, SubscriptionRecord
 from service.notify.topics import SubscriptionSpec, matches, parse_subscription
 
 __all__ = [
@@ -25,16 +28,20 @@ __all__ = [
     "create_subscription",
     "enqueue_events",
     "enqueue_heartbeats",
+    "expedite_urgent",
+    "hold_lease",
     "load_spec",
     "pending_events",
     "release",
     "served_subscription",
+    "urgent_pending",
 ]
 
 _S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
 _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 _A = DeliveryAttempt.__table__  # type: ignore[attr-defined]
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
+_F = FlagRecord.__table__  # type: ignore[attr-defined]
 # Still counting while in error (the IG: keep incrementing eventsSinceSubscriptionStart).
 _COUNTING = ("requested", "active", "error")
 
@@ -124,21 +131,72 @@ def enqueue_heartbeats(*, session: Session, now: datetime) -> int:
     return queued
 
 
-def claim_subscriptions(*, session: Session, owner: str, now: datetime, lease: timedelta) -> list[str]:
-    """Lease the subscriptions that have a due row and no live lease; returns their ids."""
-    due = select(_E.c.subscription_id).where(_E.c.status == "pending", _E.c.next_attempt_at <= now)
-    result = session.execute(
-        update(_S)
-        .where(_S.c.id.in_(due), _S.c.status.in_(("requested", "active")),
-               or_(_S.c.lease_until.is_(None), _S.c.lease_until < now))
-        .values(lease_owner=owner, lease_until=now + lease)
-        .returning(_S.c.id)
-    )
-    return sorted(r[0] for r in result)
+def claim_subscriptions(*, session: Session, token: str, now: datetime, lease: timedelta,
+                        limit: int | None = None) -> list[str]:
+    """Lease to ``token`` (at most ``limit`` of) the subscriptions that have a due row and no live
+    lease; returns their ids.
+
+    The rows are locked in id order and rows another transaction has locked are skipped (PostgreSQL
+    ``SKIP LOCKED``; SQLite has one writer anyway): an ingest numbering new events holds them for a
+    moment, and the next pass claims them instead of queueing behind it or deadlocking with it.
+    """
+    # Due: every unsent row is due (a waiting retry holds back the rows behind it, so a replica
+    # claiming such a subscription would only find it cannot send), or a handshake is due (it goes
+    # first whatever waits).
+    due = (select(_E.c.subscription_id).where(_E.c.status == "pending").group_by(_E.c.subscription_id)
+           .having(or_(func.max(_E.c.next_attempt_at) <= now,
+                       func.max(case((and_(_E.c.kind == "handshake", _E.c.next_attempt_at <= now), 1),
+                                     else_=0)) == 1)))
+    free = (select(_S.c.id)
+            .where(_S.c.id.in_(due), _S.c.status.in_(("requested", "active")),
+                   or_(_S.c.lease_until.is_(None), _S.c.lease_until < now))
+            .order_by(_S.c.id).limit(limit).with_for_update(skip_locked=True))
+    ids = [r[0] for r in session.execute(free)]
+    if ids:
+        session.execute(update(_S).where(_S.c.id.in_(ids)).values(lease_owner=token, lease_until=now + lease))
+    return ids
 
 
-def release(*, session: Session, subscription_id: str, owner: str) -> None:
-    session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == owner)
+def hold_lease(*, session: Session, subscription_id: str, token: str, until: datetime,
+               values: dict[str, Any] | None = None) -> Any | None:
+    """If ``token`` still holds the subscription's lease, extend it to ``until`` and set ``values``.
+
+    One conditional UPDATE: it locks the row, and a claim that committed meanwhile makes its
+    condition false. Returns the row as updated, or None when the lease has passed to another claim:
+    the caller must then record nothing, since the new holder owns the subscription's rows.
+    """
+    return session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == token)
+                           .values(lease_until=until, **(values or {})).returning(*_S.c)).first()
+
+
+def _urgent(subscription_id: Any) -> Any:
+    """There is an unsent event of this subscription about a high-priority Flag."""
+    e = _E.alias("urgent_event")
+    return (select(e.c.id).join(_F, _F.c.id == e.c.focus_id)
+            .where(e.c.subscription_id == subscription_id, e.c.status == "pending", _F.c.priority == "high")
+            .exists())
+
+
+def urgent_pending(*, session: Session, subscription_id: str) -> bool:
+    """Whether a high-priority Flag's notification is among the subscription's unsent rows."""
+    return bool(session.execute(select(_urgent(subscription_id))).scalar())
+
+
+def expedite_urgent(*, session: Session, by: datetime) -> int:
+    """Bring every retry scheduled after ``by`` forward to ``by`` where a high-priority Flag's
+    notification waits behind it; returns the rows changed.
+
+    Only rows that failed before are waiting; a high-priority event queued behind a row whose
+    backoff has grown long would otherwise wait out that backoff too (nothing overtakes).
+    """
+    result = session.execute(update(_E).where(_E.c.status == "pending", _E.c.attempts > 0, _E.c.next_attempt_at > by,
+                                              _urgent(_E.c.subscription_id))
+                             .values(next_attempt_at=by))
+    return int(result.rowcount or 0)  # type: ignore[attr-defined]
+
+
+def release(*, session: Session, subscription_id: str, token: str) -> None:
+    session.execute(update(_S).where(_S.c.id == subscription_id, _S.c.lease_owner == token)
                     .values(lease_owner=None, lease_until=None))
 
 

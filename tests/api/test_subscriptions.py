@@ -63,8 +63,11 @@ def params_of(notification: dict[str, Any]) -> dict[str, Any]:
 
 
 def exhaust_attempts(context: AppContext, clock: FixedClock) -> None:
-    """Run the dispatcher past every allowed attempt, waiting out each backoff."""
-    for _ in range(context.settings.delivery_max_attempts + 1):
+    """Run the dispatcher past every allowed attempt, waiting out each backoff.
+
+    The flags raised here are high priority, so the urgent schedule's count of attempts applies.
+    """
+    for _ in range(context.dispatcher.policy.attempts(urgent=True) + 1):
         context.dispatcher.run_once()
         clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
 

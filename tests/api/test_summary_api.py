@@ -191,7 +191,7 @@ def test_a_retried_delivery_counts_as_delivered_and_retried(
 def test_a_delivery_given_up_counts_as_failed(
     api: TestClient, context: AppContext, clock: FixedClock, hook: respx.Route
 ) -> None:
-    tries = context.settings.delivery_max_attempts
+    tries = context.dispatcher.policy.attempts(urgent=True)  # sodium 118 raises a high-priority Flag
     hook.side_effect = [httpx.Response(200)] + [httpx.ConnectError("refused")] * tries
     subscribe(api)
     context.dispatcher.run_once()

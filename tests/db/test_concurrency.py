@@ -2,16 +2,30 @@
 
 from __future__ import annotations
 
+import logging
+import random
+import threading
+import time
+from collections import Counter
 from concurrent.futures import ThreadPoolExecutor
-from datetime import timedelta
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
 
 import orjson
+import pytest
+from sqlalchemy import create_engine, func, select, text
 
 from service.api.context import AppContext
+from service.clock import FixedClock
+from service.config import Settings
 from service.db.reads import history, patient_key_for
+from service.db.tables import ObservationRecord
 from service.db.timeline import load_timeline
 from service.ingest import EntryRequest
-from tests.factories import observation
+from service.main import build_context
+from tests.conftest import authorised_client
+from tests.factories import HEADERS, bundle, dumps, observation
 
 
 def entries(*resources: dict) -> list[EntryRequest]:
@@ -61,3 +75,78 @@ def test_different_patients_proceed_and_all_land(context: AppContext) -> None:
     with ThreadPoolExecutor(max_workers=8) as pool:
         created = list(pool.map(send, range(16)))
     assert created == [20] * 16
+
+
+def test_concurrent_bundles_introducing_the_same_new_patients_all_succeed(context: AppContext) -> None:
+    # 8 clients, 20 rounds: in each round every client sends a transaction naming six of the same
+    # twelve new patients in its own order, by literal reference or by identifier (an MRN), so the
+    # transactions race to link the same new aliases. Sodium 131-136 mmol/L: in range, no Flag.
+    clients, rounds, per_bundle = 8, 20, 6
+    start = threading.Barrier(clients, timeout=60)  # a client that fails breaks it for all, no hang
+
+    def mrn(r: int, p: int) -> str:
+        return f"MRN-{r:02d}-{p:02d}"
+
+    def subject(r: int, p: int, c: int) -> dict[str, Any]:
+        if (p + c) % 2:
+            return {"identifier": {"system": "https://hospital.example.org/mrn", "value": mrn(r, p)}}
+        return {"reference": f"Patient/{mrn(r, p)}"}
+
+    def client_run(c: int) -> list[int | str]:
+        rng = random.Random(c)
+        statuses: list[int | str] = []
+        with authorised_client(context) as api:
+            for r in range(rounds):
+                patients = rng.sample(range(12), per_bundle)
+                obs = [observation(f"c{c}-r{r}-p{p}", value=131 + (p % 6), subject=subject(r, p, c))
+                       for p in patients]
+                start.wait()
+                try:
+                    statuses.append(api.post("/fhir", content=dumps(bundle("transaction", *obs)),
+                                             headers=HEADERS).status_code)
+                except Exception as exc:  # the test client re-raises what the server answered 500 for
+                    statuses.append(type(exc).__name__)
+        return statuses
+
+    with ThreadPoolExecutor(max_workers=clients) as pool:
+        statuses = [s for run in pool.map(client_run, range(clients)) for s in run]
+    assert Counter(statuses) == {200: clients * rounds}
+    with context.db.session() as session:
+        stored = session.execute(select(func.count()).select_from(ObservationRecord)).scalar_one()
+    assert stored == clients * rounds * per_bundle
+
+
+@pytest.mark.postgres
+def test_a_unit_of_work_that_loses_a_deadlock_is_run_again(postgres_url: str, tmp_path: Path,
+                                                          caplog: pytest.LogCaptureFixture) -> None:
+    # A deadlock on purpose: another session holds the lock of a known patient, the request (which
+    # already holds its new patient's alias lock) waits for it, and then the other session asks for
+    # that alias lock. PostgreSQL aborts the request, which waited first; it must be run again.
+    # Sodium 131 mmol/L: in range, no Flag.
+    ctx = build_context(Settings(database_url=postgres_url, data_dir=tmp_path, scheduler=False),
+                        clock=FixedClock(datetime(2026, 3, 2, 12, 0, tzinfo=UTC)))
+    other = create_engine(postgres_url)
+    try:
+        ctx.ingestor.transaction(entries(observation("k1", value=131, patient="Patient/known")), raw=b"{}")
+        with ctx.db.session() as session:
+            known = patient_key_for(session=session, alias="ref:Patient/known")
+        with other.connect() as conn, ThreadPoolExecutor(max_workers=1) as pool:
+            conn.execute(text("SELECT pg_advisory_xact_lock(hashtextextended(:k, 0))"), {"k": known})
+            request = pool.submit(ctx.ingestor.transaction, entries(
+                observation("k2", value=131, patient="Patient/known"),
+                observation("n1", value=131, patient="Patient/new")), raw=b"{}")
+            waiting = "SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND NOT granted"
+            for _ in range(100):
+                if conn.execute(text(waiting)).scalar_one():
+                    break
+                time.sleep(0.05)
+            with caplog.at_level(logging.WARNING, logger="lytestream.db"):
+                conn.execute(text("SELECT pg_advisory_xact_lock(hashtextextended(:k, 0))"),
+                             {"k": "alias:ref:Patient/new"})
+                conn.commit()
+                results = request.result(timeout=30)
+    finally:
+        other.dispose()
+        ctx.db.dispose()
+    assert [r.status for r in results] == [201, 201]
+    assert "SQLSTATE 40P01" in caplog.text

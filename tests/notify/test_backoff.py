@@ -85,7 +85,7 @@ def test_retry_after_is_a_floor_with_its_own_cap() -> None:
 
 
 @pytest.mark.parametrize("kwargs", [dict(base_s=0), dict(base_s=5, cap_s=1), dict(max_attempts=0),
-                                    dict(retry_after_cap_s=-1)])
+                                    dict(retry_after_cap_s=-1), dict(urgent_cap_s=0)])
 def test_policy_refuses_nonsense(kwargs: dict[str, float]) -> None:
     with pytest.raises(ValueError):
         RetryPolicy(**kwargs)  # type: ignore[arg-type]
@@ -96,3 +96,42 @@ def test_attempt_is_one_based() -> None:
         ceiling(0, 1.0, 2.0)
     with pytest.raises(ValueError):
         next_attempt_at(NOW, 0, policy=RetryPolicy(), rng=random.Random(1))
+
+
+class _Top(random.Random):
+    def uniform(self, a: float, b: float) -> float:
+        return b  # the top of the window
+
+
+def test_an_urgent_retry_never_waits_longer_than_the_urgent_cap() -> None:
+    policy = RetryPolicy(base_s=2.0, cap_s=300.0, max_attempts=12, urgent_cap_s=10.0)
+    waits = [next_attempt_at(NOW, n, policy=policy, rng=_Top(), urgent=True) for n in range(1, 12)]
+    assert [w.delay_s for w in waits if isinstance(w, Retry)] == [2.0, 4.0, 8.0] + [10.0] * 8
+    normal = next_attempt_at(NOW, 8, policy=policy, rng=_Top())
+    assert isinstance(normal, Retry) and normal.delay_s == 256.0  # the normal schedule is unchanged
+
+
+def test_an_urgent_schedule_keeps_trying_at_least_as_long_as_the_normal_one() -> None:
+    policy = RetryPolicy(base_s=2.0, cap_s=300.0, max_attempts=12, urgent_cap_s=10.0)
+    # Normal: waits of at most 2+4+...+256+300+300+300 = 1410 s over 11 retries. Urgent: 2+4+8, then
+    # 10 s each, so 140 more waits reach 1410 s: 144 attempts in all.
+    assert policy.attempts(urgent=False) == 12
+    assert policy.attempts(urgent=True) == 144
+    urgent_window = sum(ceiling(n, 2.0, 10.0) for n in range(1, policy.attempts(urgent=True)))
+    normal_window = sum(ceiling(n, 2.0, 300.0) for n in range(1, 12))
+    assert urgent_window >= normal_window > urgent_window - 10.0
+    assert isinstance(next_attempt_at(NOW, 143, policy=policy, rng=_Top(), urgent=True), Retry)
+    assert next_attempt_at(NOW, 144, policy=policy, rng=_Top(), urgent=True) == GiveUp(144, "max-attempts")
+
+
+def test_without_an_urgent_cap_urgent_rows_follow_the_normal_schedule() -> None:
+    policy = RetryPolicy(base_s=1.0, cap_s=10.0, max_attempts=4)
+    assert policy.attempts(urgent=True) == 4
+    d = next_attempt_at(NOW, 3, policy=policy, rng=_Top(), urgent=True)
+    assert isinstance(d, Retry) and d.delay_s == 4.0
+
+
+def test_an_urgent_cap_below_the_base_waits_the_base() -> None:
+    policy = RetryPolicy(base_s=2.0, cap_s=60.0, max_attempts=3, urgent_cap_s=0.5)
+    d = next_attempt_at(NOW, 1, policy=policy, rng=_Top(), urgent=True)
+    assert isinstance(d, Retry) and d.delay_s == 2.0
