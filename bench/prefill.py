@@ -33,7 +33,7 @@ HISTORY_DAYS = 90.0
 
 def _bulk_engine(url: str) -> Engine:
     """An engine for loading only: durability is pointless for a store built to be thrown away."""
-    engine = create_engine(url)
+    engine = create_engine(url, hide_parameters=True)
 
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_connection: Any, _record: Any) -> None:
@@ -114,7 +114,7 @@ def prefill_store(url: str, *, stored: int, patients: int, seed: int) -> int:
 
 def count_observations(engine_or_url: Engine | str) -> int:
     """Rows in the observation table: what the store actually holds."""
-    engine = create_engine(engine_or_url) if isinstance(engine_or_url, str) else engine_or_url
+    engine = create_engine(engine_or_url, hide_parameters=True) if isinstance(engine_or_url, str) else engine_or_url
     try:
         with engine.connect() as conn:
             return int(conn.execute(select(func.count()).select_from(_OBS)).scalar_one())

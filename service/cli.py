@@ -62,8 +62,11 @@ def serve(
     os.environ["LYTESTREAM_BASE_URL"] = settings.base_url
     console.print(f"lytestream on http://{host}:{port}/fhir — database {_safe_url(settings)}, {workers} worker(s)")
     console.print("[dim]Decision support only: thresholds are site policy; defer to local protocols.[/dim]")
+    from service.logsafe import log_config
+
+    # log_config: exception text withheld on every handler, whoever logs (no patient data in logs).
     uvicorn.run("service.main:app_from_environment", factory=True, host=host, port=port, workers=workers,
-                log_level="warning", access_log=False)
+                log_level="warning", access_log=False, log_config=log_config())
 
 
 @app.command()

@@ -12,6 +12,7 @@ import httpx
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
+from sqlalchemy.exc import DBAPIError
 from starlette.exceptions import HTTPException
 
 from service.api.context import AppContext
@@ -29,6 +30,7 @@ from service.errors import Issue, NotFound, RequestRejected
 from service.evaluation import Evaluator
 from service.ingest import Ingestor
 from service.jobs import start_scheduler
+from service.logsafe import describe, safe_traceback
 from service.policy import load_policy
 
 __all__ = ["app_from_environment", "build_context", "create_app"]
@@ -128,11 +130,22 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
         response.headers["Retry-After"] = "1"
         return response
 
+    @app.exception_handler(DBAPIError)
+    async def _database(_: Request, exc: DBAPIError) -> Response:
+        # Handled here, not re-raised to the server (as the catch-all below is): its text would carry
+        # the statement's patient data. The log gets the frames and the SQLSTATE only.
+        log.error("database error %s\n%s", describe(exc), safe_traceback(exc))
+        return _internal_error()
+
     @app.exception_handler(Exception)
     async def _crash(_: Request, exc: Exception) -> Response:
-        # No PHI: the type only; the traceback goes to the server log.
-        log.exception("unhandled %s", type(exc).__name__)
-        return outcome_response([Issue("exception", "internal error; nothing from this request was stored",
-                                       severity="fatal")], 500)
+        # No PHI: the type and the frames, never the message (service.logsafe).
+        log.error("unhandled %s\n%s", describe(exc), safe_traceback(exc))
+        return _internal_error()
 
     return app
+
+
+def _internal_error() -> Response:
+    return outcome_response([Issue("exception", "internal error; nothing from this request was stored",
+                                   severity="fatal")], 500)

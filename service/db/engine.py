@@ -54,7 +54,11 @@ def transient_sqlstate(exc: BaseException) -> str | None:
 
 
 class Database:
-    """The service's handle on its store. One per process."""
+    """The service's handle on its store. One per process.
+
+    Engines hide SQL parameters (``hide_parameters``): they are patient aliases, identifiers and
+    values, and SQLAlchemy would otherwise put them in every error message and echo line.
+    """
 
     def __init__(self, url: str, *, echo: bool = False) -> None:
         self.url = url
@@ -64,11 +68,12 @@ class Database:
             if parsed.database and parsed.database != ":memory:":
                 Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
             self.engine = create_engine(
-                url, echo=echo, connect_args={"check_same_thread": False, "timeout": 60}
+                url, echo=echo, hide_parameters=True, connect_args={"check_same_thread": False, "timeout": 60}
             )
             _configure_sqlite(self.engine)
         else:
-            self.engine = create_engine(url, echo=echo, pool_size=10, max_overflow=10, pool_pre_ping=True)
+            self.engine = create_engine(url, echo=echo, hide_parameters=True, pool_size=10, max_overflow=10,
+                                        pool_pre_ping=True)
         self._write_engine = self.engine.execution_options(sqlite_begin="IMMEDIATE")
         self._writer = _WriterLock(parsed.database) if self.is_sqlite else None
 

@@ -17,7 +17,7 @@ def run_migrations_online() -> None:
     if connection is None:
         from sqlalchemy import create_engine
 
-        engine = create_engine(config.get_main_option("sqlalchemy.url") or "")
+        engine = create_engine(config.get_main_option("sqlalchemy.url") or "", hide_parameters=True)
         with engine.begin() as conn:
             context.configure(connection=conn, target_metadata=target_metadata, render_as_batch=True)
             context.run_migrations()
