@@ -233,12 +233,18 @@ def test_a_killed_replicas_pages_continue_within_the_bound_and_resume_promptly_a
     drill.subscribe(SUBSCRIPTIONS)
     drill.send_results(0, CRASH_RESULTS)
     expected = drill.queued()
+    # Kill -9 mid-run whichever replica holds a lease at that moment (its leases then lapse instead
+    # of being released). Which replica holds what is the replicas' race, so the victim is chosen
+    # by looking, not named in advance: one replica may hold every lease for the whole run.
     victim, survivor = drill.procs
-    # Kill -9 mid-run, at a moment the victim holds leases (which then lapse instead of being released).
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline:
-        if len(drill.receiver.arrivals) >= sum(expected.values()) // 2 and drill.leased_by(victim.pid):
-            break
+        if len(drill.receiver.arrivals) >= sum(expected.values()) // 4:
+            holders = [p for p in drill.procs if drill.leased_by(p.pid)]
+            if holders:
+                victim = holders[0]
+                survivor = next(p for p in drill.procs if p is not victim)
+                break
         time.sleep(0.05)
     victim.kill()
     killed_at = time.monotonic()
@@ -250,7 +256,7 @@ def test_a_killed_replicas_pages_continue_within_the_bound_and_resume_promptly_a
 
     # The receiver goes away; high-priority Flags queue up on the surviving replica; it comes back.
     drill.receiver.down()
-    drill.send_results(CRASH_RESULTS, OUTAGE_RESULTS, ports=[drill.ports[1]])
+    drill.send_results(CRASH_RESULTS, OUTAGE_RESULTS, ports=[drill.ports[drill.procs.index(survivor)]])
     time.sleep(OUTAGE_S)
     back_at = time.monotonic()
     drill.receiver.up()
