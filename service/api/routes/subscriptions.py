@@ -117,7 +117,7 @@ def search(ctx: ContextDep, who: RequesterDep) -> Response:
     with ctx.db.session() as session:
         rows = session.execute(query).all()
     return fhir_response(searchset([served_subscription(r) for r in rows], base=ctx.settings.base_url,
-                                   self_url=f"{ctx.settings.base_url}/Subscription", next_url=None,
+                                   links={"self": f"{ctx.settings.base_url}/Subscription"},
                                    total=len(rows), now=ctx.clock.now()))
 
 
