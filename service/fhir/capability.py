@@ -21,7 +21,8 @@ def _search(name: str, kind: str, doc: str, ours: bool = False) -> dict[str, str
     return param
 
 
-def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | None) -> dict[str, Any]:
+def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | None,
+                         oauth_uris: dict[str, Any] | None = None) -> dict[str, Any]:
     ingest = {
         "versioning": "versioned",
         "readHistory": True,
@@ -52,6 +53,7 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                     "the business identifier: a resend is idempotent." + zone
                 ),
                 "security": {
+                    **({"extension": [oauth_uris]} if oauth_uris else {}),
                     "service": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/restful-security-service",
                                              "code": "SMART-on-FHIR"}]}],
                     "description": "Bearer token on every interaction but metadata: SMART v2 system scopes "

@@ -29,7 +29,8 @@ from tests.api.test_subscriptions import subscription
 from tests.conftest import authorised_client
 from tests.factories import HEADERS, LAB, bundle, insulin, observation
 
-PUBLIC = {("GET", "/fhir/metadata"), ("GET", "/healthz"), ("GET", "/readyz")}
+PUBLIC = {("GET", "/fhir/metadata"), ("GET", "/healthz"), ("GET", "/readyz"),
+          ("GET", "/.well-known/smart-configuration"), ("GET", "/fhir/.well-known/smart-configuration")}
 CLIENT = "walker"  # every token of the walk names one client, so it owns the subscription it walks
 
 
