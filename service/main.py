@@ -20,7 +20,7 @@ from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
 from service.api.intake import BodyAborted, BodyIntake
 from service.api.refusals import RefusalAudit, RefusalLimiter
-from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
+from service.api.routes import audit, conformance, flags, ingest, meta, read, subscriptions, summary
 from service.api.wire import FhirWire
 from service.arrivals import ArrivalReview
 from service.auth.deps import Authenticator, install_auth
@@ -89,6 +89,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     install_auth(app, authenticator, on_refused=RefusalAudit(db=ctx.db, clock=ctx.clock,
                                                              base_url=ctx.settings.base_url, limiter=ctx.refusals))
     app.include_router(meta.router)
+    app.include_router(conformance.router)  # before read.router, like summary
     app.include_router(summary.router)  # before read.router: /fhir/Flag/$summary is not a Flag id
     app.include_router(ingest.router)
     app.include_router(flags.router)

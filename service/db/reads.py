@@ -121,6 +121,7 @@ class FlagQuery:
     date_to: datetime | None = None
     updated_from: datetime | None = None
     updated_to: datetime | None = None
+    details: Sequence[str] | None = None  # cites any of these: Type/id (any version) or Type/id/_history/n
     sort: str = "-_lastUpdated"
     count: int = 50
     offset: int = 0
@@ -148,7 +149,16 @@ def search_flags(*, session: Session, q: FlagQuery) -> tuple[list[bytes], int]:
         conds.append(f.c.last_updated >= q.updated_from)
     if q.updated_to is not None:
         conds.append(f.c.last_updated < q.updated_to)
+    if q.details is not None:
+        conds.append(or_(false(), *(f.c.evidence.like(_cites(ref), escape="\\") for ref in q.details)))
     return _served_page(session, f, "Flag", conds, {"date": f.c.period_start}, q.sort, q.count, q.offset)
+
+
+def _cites(ref: str) -> str:
+    """A LIKE pattern for the evidence JSON list holding ``ref`` (a version-specific one, or any version)."""
+    literal = ref.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_")
+    return f'%"{literal}"%' if "/_history/" in ref else f'%"{literal}/\\_history/%'
+
 
 
 def read_references(*, session: Session, references: Iterable[str]) -> list[bytes]:

@@ -96,6 +96,8 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                             _search("status", "token", "active | inactive | entered-in-error", ours=True),
                             _search("code", "token", f"rule code ({RULE_SYSTEM})", ours=True),
                             _search("priority", "token", "PH | PM | PL (flag-priority)", ours=True),
+                            _search("detail", "reference", "a result the Flag cites (Observation/id); "
+                                    "_include=Flag:detail returns them", ours=True),
                             _search("_count", "number", "page size"),
                         ],
                     },

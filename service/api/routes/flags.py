@@ -22,12 +22,12 @@ from service.errors import Issue, NotFound, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
 from service.fhir.flag_render import FLAG_DETAIL_URL, RULE_SYSTEM
 from service.fhir.render import fhir_instant
-from service.fhir.search import codes_in_system, date_bounds, intersect
+from service.fhir.search import codes_in_system, date_bounds, intersect, tokens
 
 router = APIRouter()
 
 _PARAMS = {"patient", "patient:identifier", "subject", "date", "_lastUpdated", "status", "code", "priority",
-           "_sort", "_include"}
+           "detail", "_sort", "_include"}
 FLAG_STATUS = "http://hl7.org/fhir/flag-status"
 FLAG_STATUSES = ("active", "inactive", "entered-in-error")  # FHIR R4 ValueSet flag-status
 FLAG_PRIORITY = "http://hl7.org/fhir/flag-priority-code"
@@ -52,8 +52,9 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
                                                FLAG_PRIORITIES))
     priorities = None if priority_codes is None else [_PRIORITY_CODES[p] for p in priority_codes
                                                       if p in _PRIORITY_CODES]
+    details = intersect([{t.code for t in tokens(v)} for v in params.getlist("detail")])
     alias = patient_alias(params)
-    q = FlagQuery(statuses=_listed(statuses), rules=_listed(rules), priorities=priorities,
+    q = FlagQuery(details=_listed(details), statuses=_listed(statuses), rules=_listed(rules), priorities=priorities,
                   date_from=low, date_to=high, updated_from=updated_low, updated_to=updated_high, sort=sort, count=page.count, offset=page.offset)
 
     def run() -> tuple[list[bytes], int, list[bytes], list[Issue]]:
