@@ -43,10 +43,12 @@ PUBLISHED = {
     "capabilitystatement-subscriptiontopic-canonical",
     # HL7 terminology (https://terminology.hl7.org/CodeSystem-restful-security-service.html).
     "http://terminology.hl7.org/CodeSystem/restful-security-service",
+    # LOINC's system URI (R4 terminologies-systems.html).
+    "http://loinc.org",
     # SMART App Launch 2.x, "Conformance": the oauth-uris extension of the CapabilityStatement.
     "http://fhir-registry.smarthealthit.org/StructureDefinition/oauth-uris",
 }
-_URL = re.compile(r"https?://[^\s\"'()<>,;]+")
+_URL = re.compile(r"https?://[^\s\"'()<>,;|]+")  # "system|code" in text names the system
 
 
 def cited(node: Any) -> Iterator[str]:
