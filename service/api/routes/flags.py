@@ -6,10 +6,11 @@ import orjson
 from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
+from starlette.datastructures import QueryParams
 
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
-from service.api.paging import Page, page_bundle, patient_alias, search_params, sort_param
+from service.api.paging import Page, page_bundle, patient_alias, search_params, sort_param, strict_handling
 from service.api.requester import RequesterDep
 from service.auth.deps import require
 from service.auth.scopes import needed_scope
@@ -41,9 +42,16 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
     params, ignored = search_params(request.query_params, request.headers, _PARAMS)
     page = Page(params, ctx.settings)
     sort = sort_param(params, "-_lastUpdated")
-    includes = params.getlist("_include")
-    if any(i != INCLUDE_EVIDENCE for i in includes):
-        raise RequestRejected([Issue("not-supported", f"_include supports {INCLUDE_EVIDENCE} only")])
+    includes = [i for i in params.getlist("_include") if i == INCLUDE_EVIDENCE]
+    other = sorted(set(params.getlist("_include")) - {INCLUDE_EVIDENCE})
+    if other:
+        # An include we cannot do is an unsupported parameter value: lenient unless asked to be strict.
+        issue = Issue("not-supported", f"_include={', '.join(other)} is not supported and was ignored; "
+                      f"_include supports {INCLUDE_EVIDENCE} only", severity="warning")
+        if strict_handling(request.headers):
+            raise RequestRejected([Issue(issue.code, issue.message)])
+        ignored.append(issue)
+        params = QueryParams([(k, v) for k, v in params.multi_items() if not (k == "_include" and v in other)])
     low, high = date_bounds(params.getlist("date"))
     updated_low, updated_high = date_bounds(params.getlist("_lastUpdated"), "_lastUpdated")
     statuses = intersect(codes_in_system(params.getlist("status"), FLAG_STATUS, "status", FLAG_STATUSES))
