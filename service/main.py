@@ -120,7 +120,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     async def _http(request: Request, exc: HTTPException) -> Response:
         code = {404: "not-found", 405: "not-supported"}.get(exc.status_code, "processing")
         detail = str(exc.detail)
-        if exc.status_code in (404, 405):
+        if exc.status_code == 404:
             # A path no route serves: say where FHIR is, so a misconfigured client can correct its base.
             detail = (f"{request.method} {request.url.path}: {detail.lower()}; the FHIR base of this server is "
                       f"{ctx.settings.base_url} (its CapabilityStatement at {ctx.settings.base_url}/metadata)")
