@@ -25,8 +25,14 @@ _OBJECT_ROLE = "http://terminology.hl7.org/CodeSystem/object-role"
 CLIENT_SYSTEM = f"{CANONICAL_BASE}/client-id"
 _ACTIONS = {"create": "C", "update": "U", "read": "R", "vread": "R", "search-type": "E", "history-instance": "R",
             "transaction": "C", "batch": "C", "operation": "E", "delete": "D"}
-_PROFILES = {"read": "PatientRead", "vread": "PatientRead", "search-type": "PatientQuery",
-             "history-instance": "PatientRead"}
+# BALP profile per interaction: (with a patient subject, without one).
+_PROFILES = {"read": ("PatientRead", "Read"), "vread": ("PatientRead", "Read"),
+             "history-instance": ("PatientRead", "Read"), "search-type": ("PatientQuery", "Query"),
+             "update": ("PatientUpdate", "Update"), "delete": ("PatientDelete", "Delete")}
+# Our operations, by the RESTful interaction each amounts to: $acknowledge writes a new Flag version;
+# the others only read.
+_OPERATION_KIND = {"$acknowledge": "update", "$summary": "search-type", "$refusals": "search-type",
+                   "$events": "search-type"}
 
 
 @dataclass(frozen=True, slots=True)
@@ -57,9 +63,9 @@ class AuditFacts:
 
 
 def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
-    profile = _PROFILES.get(f.subtype, "PatientCreate" if f.patient else "Create")
-    if f.subtype in ("search-type", "read", "vread", "history-instance") and not f.patient:
-        profile = "Query" if f.subtype == "search-type" else "Read"
+    kind = _OPERATION_KIND.get(f.operation, "create") if f.operation else f.subtype
+    with_patient, without = _PROFILES.get(kind, ("PatientCreate", "Create"))
+    profile = with_patient if f.patient else without
     subtype = [{"system": "http://hl7.org/fhir/restful-interaction", "code": f.subtype}]
     if f.operation:
         subtype = [{"system": f"{CANONICAL_BASE}/CodeSystem/operation", "code": f.operation.lstrip("$")}]
@@ -106,7 +112,7 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
         "type": {"system": "http://terminology.hl7.org/CodeSystem/audit-event-type", "code": "rest",
                  "display": "Restful Operation"},
         "subtype": subtype,
-        "action": _ACTIONS.get(f.subtype, "E"),
+        "action": _ACTIONS.get(kind, "E"),
         "recorded": fhir_instant(f.recorded),
         "outcome": f.outcome,
         "agent": [
