@@ -29,6 +29,9 @@ _ACTIONS = {"create": "C", "update": "U", "read": "R", "vread": "R", "search-typ
 _PROFILES = {"read": ("PatientRead", "Read"), "vread": ("PatientRead", "Read"),
              "history-instance": ("PatientRead", "Read"), "search-type": ("PatientQuery", "Query"),
              "update": ("PatientUpdate", "Update"), "delete": ("PatientDelete", "Delete")}
+# Events of ours that are no RESTful interaction, and so claim no BALP profile. dropped-code: a
+# request's results under a likely mistyped code were not stored (counted per client).
+_OWN_SUBTYPES = {"dropped-code": "C"}
 # Our operations, by the RESTful interaction each amounts to: $acknowledge writes a new Flag version;
 # the others only read.
 _OPERATION_KIND = {"$acknowledge": "update", "$summary": "search-type", "$refusals": "search-type",
@@ -69,6 +72,8 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
     with_patient, without = _PROFILES.get(kind, ("PatientCreate", "Create"))
     profile = with_patient if f.patient else without
     subtype = [{"system": "http://hl7.org/fhir/restful-interaction", "code": f.subtype}]
+    if f.subtype in _OWN_SUBTYPES:
+        subtype = [{"system": f"{CANONICAL_BASE}/CodeSystem/audit-subtype", "code": f.subtype}]
     if f.operation:
         subtype = [{"system": f"{CANONICAL_BASE}/CodeSystem/operation", "code": f.operation.lstrip("$")}]
     client_agent: dict[str, Any] = {
@@ -111,7 +116,7 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
         "type": {"system": "http://terminology.hl7.org/CodeSystem/audit-event-type", "code": "rest",
                  "display": "Restful Operation"},
         "subtype": subtype,
-        "action": _ACTIONS.get(kind, "E"),
+        "action": _ACTIONS.get(kind) or _OWN_SUBTYPES.get(kind, "E"),
         "recorded": fhir_instant(f.recorded),
         "outcome": f.outcome,
         "agent": [
@@ -125,7 +130,7 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
     }
     if f.outcome_desc:
         event["outcomeDesc"] = f.outcome_desc
-    if f.refused:
+    if f.refused or f.subtype in _OWN_SUBTYPES:
         del event["meta"]  # BALP's profiles describe successful interactions; this one was refused
     return event
 
