@@ -101,6 +101,10 @@ def _operation_definitions() -> list[dict[str, Any]]:
                    _out("results_not_evaluated", None, "results no rule can read as they now stand", [
                        _out("count", "integer", "how many"),
                        _by("by_reason", "by reason")]),
+                   _out("results_dropped_under_suspect_codes", None,
+                        "results not stored because their code looked like a mistyped watched code", [
+                            _out("count", "integer", "how many"),
+                            _by("by_client", "by the client that sent them")]),
                    _latency("result_to_flag", "from the evidence time to the Flag"),
                    _latency("flag_to_acknowledgement", "from the Flag to its acknowledgement",
                             _out("unacknowledged", "integer", "Flags never acknowledged")),

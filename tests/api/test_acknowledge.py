@@ -72,3 +72,15 @@ def test_acknowledged_flag_is_no_longer_due_for_escalation(
     ack(client, flag_id)
     with context.db.session() as session:
         assert due_escalations(session=session, after=after, now=later) == []
+
+
+def test_acknowledge_is_audited_as_an_update_of_the_flag(client: TestClient) -> None:
+    # Acknowledging changes the Flag (a new version): BALP's "successful Update with a Patient
+    # subject" (IHE.BasicAudit.PatientUpdate, action U), not a Create.
+    flag_id = raise_flag(client)
+    ack(client, flag_id)
+    (entry,) = client.get("/fhir/AuditEvent?subtype=acknowledge").json()["entry"]
+    event = entry["resource"]
+    assert event["meta"]["profile"] == ["https://profiles.ihe.net/ITI/BALP/StructureDefinition/"
+                                        "IHE.BasicAudit.PatientUpdate"]
+    assert event["action"] == "U"

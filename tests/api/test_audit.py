@@ -61,3 +61,48 @@ def test_empty_search_leaves_one_query_audit_without_patient(client: TestClient)
     (event,) = audits(client, "&subtype=search-type")
     assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.Query")
     assert not any(e.get("role", {}).get("code") == "1" for e in event["entity"])
+
+
+# Observation and MedicationAdministration carry patient data as much as Flags do: BALP asks the
+# same of their reads (IHE ITI BALP, "Basic AuditEvent for a successful Read with Patient" and
+# "... Query with Patient" — profiles IHE.BasicAudit.PatientRead / PatientQuery).
+
+def test_observation_read_is_audited_with_its_patient(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("batch", observation("a"))), headers=HEADERS)
+    obs = client.get("/fhir/Observation").json()["entry"][0]["resource"]
+    client.get(f"/fhir/Observation/{obs['id']}")
+    (event,) = audits(client, "&subtype=read")
+    AuditEvent.model_validate(event)
+    assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.PatientRead")
+    whats = [e.get("what") for e in event["entity"]]
+    assert {"reference": f"Observation/{obs['id']}/_history/1"} in whats
+    assert {"reference": "Patient/p1"} in whats
+
+
+def test_observation_search_is_audited_once_per_patient_returned(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("batch", observation("a"), observation("b"),
+                                              observation("c", patient="Patient/p2"))), headers=HEADERS)
+    client.get("/fhir/Observation")
+    events = audits(client, "&subtype=search-type")
+    assert len(events) == 2
+    for event in events:
+        AuditEvent.model_validate(event)
+        assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.PatientQuery")
+        query = next(e for e in event["entity"] if e.get("role", {}).get("code") == "24")
+        assert query["description"].startswith("GET Observation")
+    (p1,) = audits(client, "&subtype=search-type&patient=Patient/p1")
+    assert sum(1 for e in p1["entity"] if e.get("what", {}).get("reference", "").startswith("Observation/")) == 2
+
+
+def test_observation_search_that_finds_nothing_leaves_one_query_audit(client: TestClient) -> None:
+    client.get("/fhir/Observation?patient=Patient/nobody")
+    (event,) = audits(client, "&subtype=search-type")
+    assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.Query")
+
+
+def test_observation_history_is_audited(client: TestClient) -> None:
+    client.post("/fhir", content=dumps(bundle("batch", observation("a"))), headers=HEADERS)
+    obs = client.get("/fhir/Observation").json()["entry"][0]["resource"]
+    client.get(f"/fhir/Observation/{obs['id']}/_history")
+    (event,) = audits(client, "&subtype=history-instance")
+    assert {"reference": "Patient/p1"} in [e.get("what") for e in event["entity"]]

@@ -155,3 +155,10 @@ def test_summary_answers_a_parameters_resource_as_fhir_json(context: AppContext)
     Parameters.model_validate(body)
     names = {p["name"] for p in body["parameter"]}
     assert {"start", "end", "flags_raised", "alert_burden", "caution"} <= names
+
+
+def test_every_summary_parameter_is_declared_by_its_operation_definition(client: TestClient) -> None:
+    declared = client.get("/fhir/OperationDefinition/Flag-summary").json()["parameter"]
+    outs = {p["name"] for p in declared if p["use"] == "out"}
+    answered = client.get("/fhir/Flag/$summary?start=2026-03-01&end=2026-03-03").json()["parameter"]
+    assert {p["name"] for p in answered} - outs == set()

@@ -8,6 +8,7 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 from starlette.datastructures import QueryParams
 
+from service.api.access_audit import audit_patient_access
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.api.paging import Page, page_bundle, patient_alias, search_params, sort_param, strict_handling
@@ -77,7 +78,7 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
                         if e["url"] == FLAG_DETAIL_URL]
                 readable, withheld = _readable_evidence(refs, who)
                 included = read_references(session=session, references=readable)
-        audit_flag_access(ctx, who, rows, subtype="search-type", query=f"GET Flag?{request.url.query}")
+        audit_patient_access(ctx, who, rows, subtype="search-type", query=f"GET Flag?{request.url.query}")
         return rows, total, included, withheld
 
     rows, total, included, withheld = await run_in_threadpool(run)
@@ -111,29 +112,6 @@ def _readable_evidence(refs: list[str], who: Requester) -> tuple[list[str], list
                     severity="warning")
               for rtype, found in sorted(left_out.items())]
     return readable, issues
-
-
-def audit_flag_access(ctx: ContextDep, who: Requester, rows: list[bytes], *, subtype: str,
-                      query: str | None = None) -> None:
-    """BALP: one AuditEvent per patient whose Flags were returned; an empty result leaves one Query event."""
-    by_patient: dict[str, list[str]] = {}
-    for row in rows:
-        flag = orjson.loads(row)
-        key = orjson.dumps(flag["subject"], option=orjson.OPT_SORT_KEYS).decode()
-        by_patient.setdefault(key, []).append(f"Flag/{flag['id']}/_history/{flag['meta']['versionId']}")
-    now = ctx.clock.now()
-    with ctx.db.session(write=True) as session:
-        events: list[tuple[AuditFacts, str | None]] = []
-        if not by_patient:
-            events.append((AuditFacts(subtype=subtype, recorded=now, requester=who, query=query), None))
-        for subject_json, refs in by_patient.items():
-            subject = orjson.loads(subject_json)
-            alias = (f"ref:{subject['reference']}" if "reference" in subject
-                     else f"id:{subject['identifier']['system']}|{subject['identifier']['value']}")
-            facts = AuditFacts(subtype=subtype, recorded=now, requester=who, patient=subject, what=refs,
-                               query=query)
-            events.append((facts, patient_key_for(session=session, alias=alias)))
-        record_audit(session=session, events=events, base_url=ctx.settings.base_url)
 
 
 @router.post("/fhir/Flag/{flag_id}/$acknowledge", dependencies=[Depends(require("Flag", "u"))])

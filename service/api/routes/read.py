@@ -7,11 +7,11 @@ from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
+from service.api.access_audit import audit_patient_access
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
 from service.api.paging import Page, page_bundle, patient_alias, search_params, sort_param
 from service.api.requester import RequesterDep
-from service.api.routes.flags import audit_flag_access
 from service.auth.deps import require
 from service.auth.failures import forbidden
 from service.auth.scopes import needed_scope
@@ -52,8 +52,7 @@ def _vread(rtype: str, rid: str, vid: int | None, ctx: ContextDep, who: Requeste
         body = read_version(session=session, resource_type=rtype, rid=rid, version=vid)
     if body is None:
         raise NotFound(f"{rtype}/{rid}" + (f"/_history/{vid}" if vid else "") + " is not held here")
-    if rtype == "Flag":
-        audit_flag_access(ctx, who, [body], subtype="vread" if vid else "read")
+    audit_patient_access(ctx, who, [body], subtype="vread" if vid else "read")
     meta = orjson.loads(body)["meta"]
     return fhir_response(body, headers={"ETag": f'W/"{meta["versionId"]}"'})
 
@@ -66,8 +65,7 @@ def instance_history(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -
         versions = history(session=session, resource_type=rtype, rid=rid)
     if not versions:
         raise NotFound(f"{rtype}/{rid} is not held here")
-    if rtype == "Flag":
-        audit_flag_access(ctx, who, [versions[0][2]], subtype="history-instance")
+    audit_patient_access(ctx, who, [versions[0][2]], subtype="history-instance")
     base = ctx.settings.base_url
     entries = [
         {
@@ -83,7 +81,7 @@ def instance_history(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -
 
 
 @router.get("/fhir/Observation", dependencies=[Depends(require("Observation", "s"))])
-async def search(request: Request, ctx: ContextDep) -> Response:
+async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
     params, ignored = search_params(request.query_params, request.headers, _OBS_PARAMS)
     page = Page(params, ctx.settings)
     sort = sort_param(params, "-date")
@@ -109,6 +107,8 @@ async def search(request: Request, ctx: ContextDep) -> Response:
             return search_observations(session=session, q=q)
 
     rows, total = await run_in_threadpool(run)
+    await run_in_threadpool(audit_patient_access, ctx, who, rows, subtype="search-type",
+                            query=f"GET Observation?{request.url.query}")
     return fhir_response(page_bundle(rtype="Observation", params=params, page=page, rows=rows, total=total,
                                      settings=ctx.settings, now=ctx.clock.now(), outcome=ignored))
 

@@ -17,6 +17,7 @@ from fastapi.responses import Response
 from sqlalchemy import select, update
 from sqlmodel import Session
 
+from service.api.access_audit import audit_patient_access
 from service.api.context import AppContext, ContextDep
 from service.api.fhir_io import fhir_response, read_json
 from service.api.requester import RequesterDep
@@ -224,6 +225,10 @@ def events(sid: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Re
             out.append(NotificationEvent(number=e.number, timestamp=e.created_at, focus=f"Flag/{e.focus_id}",
                                          interaction=e.interaction or "update", version_id=str(e.focus_version),
                                          last_updated=e.created_at, resource=resource))
+    if shown == "full-resource":
+        audit_patient_access(ctx, who, [orjson.dumps(e.resource) for e in out if e.resource is not None],
+                             subtype="operation", operation="$events",
+                             query=f"GET Subscription/{sid}/$events?{request.url.query}")
     return fhir_response(events_response(state, out, now=ctx.clock.now(), content=content))
 
 
