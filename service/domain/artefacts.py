@@ -22,6 +22,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from datetime import timedelta
 
+from service.domain.coverage import read_specimens
 from service.domain.derived import pair_nearest
 from service.domain.values import Analyte, LabResult, Method
 from service.policy.model import Policy
@@ -39,7 +40,10 @@ def suspects(results: Sequence[LabResult], policy: Policy) -> Mapping[str, str]:
     within = timedelta(hours=policy.artefacts.spike_within_hours)
     series: dict[tuple[Analyte, Method], list[LabResult]] = {}
     for r in results:
-        if r.analyte in policy.artefacts.delta and r.value is not None and r.comparator is None:
+        # Only results some rule reads: one no rule reads (a point-of-care sodium under a policy that
+        # reads none) must not make a readable neighbour look like a jump, nor change any finding.
+        if (r.analyte in policy.artefacts.delta and r.value is not None and r.comparator is None
+                and not r.calculated and r.specimen in read_specimens(r.analyte, policy)):
             series.setdefault((r.analyte, r.method), []).append(r)
     for (analyte, _), same in series.items():
         check = policy.artefacts.delta[analyte]

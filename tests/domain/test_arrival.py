@@ -171,3 +171,14 @@ def test_a_result_called_readable_is_cited_by_a_finding_at_an_extreme_value(anal
         return
     findings = evaluate(timeline([result]), POLICY, at(0))
     assert any(result.reference in f.evidence for f in findings)
+
+
+def test_an_unread_point_of_care_sodium_does_not_make_a_whole_blood_sodium_look_like_a_jump() -> None:
+    # Found by the property above: point-of-care and whole-blood sodium share the direct-ISE method
+    # series of the delta check, so a point-of-care 1.0 that no rule reads made the whole-blood 100
+    # beside it "moved +99 mmol/L". Sodium 100 is below the critical low of 120 mmol/L (RCPath G158 2017).
+    whole_blood = lab(Analyte.SODIUM, 100.0, 0, specimen=Specimen.WHOLE_BLOOD, obs_id="wb")
+    poc = lab(Analyte.SODIUM, 1.0, 0, specimen=Specimen.POINT_OF_CARE, obs_id="extra")
+    unread = unread_result(poc, POLICY)
+    assert unread is not None and unread.code == "specimen-not-read"
+    assert evaluate(timeline([whole_blood, poc]), POLICY, at(60)) == evaluate(timeline([whole_blood]), POLICY, at(60))
