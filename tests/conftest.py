@@ -10,12 +10,19 @@ from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
+from hypothesis import settings as hypothesis_settings
 from sqlalchemy import create_engine, text
 
 from service.auth.tokens import mint
 from service.clock import FixedClock
 from service.config import Settings
 from service.main import build_context, create_app
+
+# CI runs the property tests on a fixed sequence of examples (HYPOTHESIS_PROFILE=ci in .ci/run), so
+# a red run can be repeated exactly; locally each run explores new examples, which is how the
+# properties keep finding faults. A failure found locally becomes a named test of its own.
+hypothesis_settings.register_profile("ci", derandomize=True, print_blob=True)
+hypothesis_settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "default"))
 
 POSTGRES_URL = os.environ.get(
     "LYTESTREAM_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
