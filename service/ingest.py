@@ -274,6 +274,15 @@ class Ingestor:
         if found.kind is Kind.PATIENT:
             aliases = patient_entry_aliases(normalise_patient(resource, e.root), e.url)
             return _Prepared(Kind.PATIENT, warnings, aliases=aliases)
+        if found.kind is Kind.OBSERVATION and found.entry is None:
+            # Triage could not read Observation.code and the models found it well formed: a code of text
+            # alone (valid, but not one we watch) or an empty one (ele-1: an element has a value or children).
+            code = resource.get("code")
+            if not code:
+                raise Invalid([Issue("required", "Observation.code must carry a coding or text (ele-1)",
+                                     (f"{e.root}.code",))])
+            return _Prepared(Kind.IGNORED, [], reason="Observation code carries no coding lytestream watches; "
+                             "not stored")
         if found.kind is Kind.OBSERVATION:
             assert found.entry is not None
             obs = normalise_observation(resource, found.entry, e.root)
