@@ -280,7 +280,9 @@ def _observation_time(resource: dict[str, Any], root: str, issues: list[Issue]) 
             if _has_time(period.get(key)):
                 path = f"{root}.effectivePeriod.{key}"
                 return _read_time(period[key], path, issues), path
-        return None, f"{root}.effectivePeriod"
+        # Neither has a time of day: name the one sent (start first), or the Period if it is empty.
+        sent = next((k for k in ("start", "end") if k in period), None)
+        return None, f"{root}.effectivePeriod.{sent}" if sent else f"{root}.effectivePeriod"
     return None, f"{root}.effective"
 
 

@@ -242,3 +242,11 @@ def test_an_unexpected_fault_answers_an_operation_outcome_without_raising_to_the
     assert r.status_code == 500
     assert outcome_issue(r.json())["code"] == "exception"
 
+
+
+@pytest.mark.parametrize("parameter", ["note", ["note"], [{"name": "note", "valueString": 5}]],
+                         ids=["string", "list-of-strings", "number-note"])
+def test_an_acknowledge_body_of_the_wrong_shape_is_a_400(client: TestClient, parameter: Any) -> None:
+    body = {"resourceType": "Parameters", "parameter": parameter}
+    r = client.post("/fhir/Flag/abc/$acknowledge", content=dumps(body), headers=HEADERS)
+    assert r.status_code == 400, r.text
