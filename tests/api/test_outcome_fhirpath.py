@@ -137,6 +137,8 @@ FAULTS = [
           "Bundle.entry[1].request.method", "PATCH", "PATCH"),
     Fault("request.method HEAD", in_batch(obs(), set_at("entry", 1, "request", "method", value="HEAD")), "/fhir",
           "Bundle.entry[1].request.method", "HEAD", "HEAD"),
+    Fault("request.method outside http-verb", in_batch(obs(), set_at("entry", 1, "request", "method", value="post")),
+          "/fhir", "Bundle.entry[1].request.method", "post", "post"),
     Fault("request.url a number", in_batch(obs(), set_at("entry", 1, "request", "url", value=7)), "/fhir",
           "Bundle.entry[1].request.url", 7),
     Fault("request.url for another type", in_batch(obs(), set_at("entry", 1, "request", "url", value="Patient")),

@@ -73,6 +73,8 @@ def _bundle_entries(body: Any, max_entries: int) -> tuple[list[EntryRequest], st
 
 
 _REQUEST_STRINGS = ("method", "url", "ifNoneExist")
+# Bundle.entry.request.method is bound (required) to http-verb: https://hl7.org/fhir/R4/valueset-http-verb.html
+_HTTP_VERBS = ("GET", "HEAD", "POST", "PUT", "DELETE", "PATCH")
 
 
 def _entry(e: Any, root: str, kind: str) -> EntryRequest:
@@ -92,6 +94,10 @@ def _entry(e: Any, root: str, kind: str) -> EntryRequest:
         bad = next((k for k in _REQUEST_STRINGS if k in request and not isinstance(request[k], str)), None)
         if bad is not None:
             refused = Issue("value", f"request.{bad} must be a JSON string", (f"{root}.request.{bad}",))
+        elif request["method"] not in _HTTP_VERBS:
+            refused = Issue("code-invalid", f"request.method {request['method']!r} is not in the required value "
+                            f"set http-verb ({', '.join(_HTTP_VERBS)}); codes are case-sensitive",
+                            (f"{root}.request.method",))
     if refused is not None:
         return EntryRequest(root=f"{root}.resource", resource=e.get("resource"), refused=refused)
     assert isinstance(request, dict)
