@@ -159,10 +159,11 @@ def replay(
     from service.replay import replay_file
 
     summary = replay_file(file, url, bundle_size=bundle_size, console=console, token=token)
-    typer.echo(f"accepted {summary.accepted} rejected {summary.rejected} of {summary.total} entries")
-    for line in summary.errors[:20]:
+    typer.echo(f"{summary.total} entries: stored {summary.stored}, patient identities {summary.recorded}, "
+               f"dropped {summary.dropped} (not watched), refused {summary.refused}")
+    for line in [*summary.warnings[:20], *summary.errors[:20]]:
         typer.echo(line)
-    if summary.rejected:
+    if summary.refused:
         raise typer.Exit(code=1)
 
 

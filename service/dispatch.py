@@ -33,14 +33,18 @@ import uuid
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
+from urllib.parse import urlsplit
 
 import httpx
 import orjson
 from sqlalchemy import case, select
+from sqlmodel import Session
 
 from service.clock import Clock
 from service.config import Settings
+from service.db.audit import record_audit
 from service.db.engine import Database
+from service.db.reads import patient_key_for
 from service.db.subscriptions import (
     claim_subscriptions,
     expedite_urgent,
@@ -53,6 +57,8 @@ from service.db.subscriptions import (
     urgent_pending,
 )
 from service.db.tables import SubscriptionRecord
+from service.fhir.audit_render import AuditFacts, Requester
+from service.fhir.references import served_subject_alias
 from service.notify.backoff import GiveUp, RetryPolicy, next_attempt_at
 from service.notify.bundles import (
     ErrorNote,
@@ -183,7 +189,7 @@ class Dispatcher:
                 log.warning("delivery subscription=%s lease lost before sending; another replica has it", sid)
                 return sent, False
             # Built just before sending, so the status it reports is the subscription's current one.
-            body = self._bundle(sub, row, now)
+            body, disclosed = self._bundle(sub, row, now)
             outcome = deliver(self.client, endpoint=spec.endpoint, headers=spec.headers,
                               content_type=spec.payload_mime, body=orjson.dumps(body), timeout_s=timeout_s)
             done = self.clock.now()
@@ -199,6 +205,9 @@ class Dispatcher:
                                    error=outcome.error, elapsed_ms=outcome.elapsed_ms, now=done,
                                    next_at=None if decision is None or give_up else decision.at,  # type: ignore[union-attr]
                                    give_up=give_up)
+                    if disclosed is not None and outcome.status is not None:
+                        # The receiver answered, so it has the Flag, whatever its answer said.
+                        self._audit_disclosure(session, current, spec.endpoint, disclosed, outcome.ok, done)
                     sub = current  # as of this lock: the next notification reports the current count
             if current is None:
                 # Taken over while this send was out (a pause longer than the room left): the new holder
@@ -215,12 +224,13 @@ class Dispatcher:
                 return sent, False
         return sent, len(rows) == _BATCH
 
-    def _bundle(self, sub: Any, row: Any, now: datetime) -> dict[str, Any]:
+    def _bundle(self, sub: Any, row: Any, now: datetime) -> tuple[dict[str, Any], dict[str, Any] | None]:
+        """The notification, and the Flag it carries when its content is full-resource."""
         state = subscription_state(sub, self.settings.base_url)
         if row.kind == "handshake":
-            return handshake(state, now=now)
+            return handshake(state, now=now), None
         if row.kind == "heartbeat":
-            return heartbeat(state, now=now)
+            return heartbeat(state, now=now), None
         resource = None
         if state.content == "full-resource":
             with self.db.session() as session:
@@ -228,7 +238,20 @@ class Dispatcher:
         event = NotificationEvent(number=row.number, timestamp=row.created_at, focus=f"Flag/{row.focus_id}",
                                   interaction=row.interaction or "update", version_id=str(row.focus_version),
                                   last_updated=row.created_at, resource=resource)
-        return event_notification(state, [event], now=now)
+        return event_notification(state, [event], now=now), resource
+
+    def _audit_disclosure(self, session: Session, sub: Any, endpoint: str, flag: dict[str, Any], ok: bool,
+                          now: datetime) -> None:
+        parts = urlsplit(endpoint)
+        who = Requester(client=sub.owner_client or "unknown", address=f"{parts.scheme}://{parts.netloc}",
+                        request_id="")
+        facts = AuditFacts(subtype="disclose", recorded=now, requester=who, patient=flag["subject"],
+                           what=[f"Flag/{flag['id']}/_history/{flag['meta']['versionId']}", f"Subscription/{sub.id}"],
+                           outcome="0" if ok else "4",
+                           outcome_desc=None if ok else "the receiver did not accept the notification")
+        key = patient_key_for(session=session, alias=served_subject_alias(flag["subject"]))
+        record_audit(session=session, events=[(facts, key)],
+                     base_url=self.settings.base_url)
 
 
 def _after(row: Any, ok: bool, give_up: bool, error: str | None, now: datetime) -> dict[str, Any]:

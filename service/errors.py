@@ -1,7 +1,7 @@
 """The service's exceptions. Only the API edge turns them into HTTP and OperationOutcome.
 
     ServiceError
-    ├── RequestRejected          one or more issues with what the client sent (400/404/408/409/412/413/415/422)
+    ├── RequestRejected          one or more issues with what the client sent (400/404/408/409/410/412/413/415/422)
     └── NotFound                 the resource or version is not held (404)
 """
 
@@ -43,7 +43,7 @@ class RequestRejected(ServiceError):
     def status(self) -> int:
         """The most telling status among the errors (413 and 422 over a plain 400)."""
         errors = [i.status for i in self.issues if i.severity in ("error", "fatal")]
-        for preferred in (403, 408, 413, 415, 409, 412, 404, 422):
+        for preferred in (403, 408, 413, 415, 409, 412, 404, 410, 422):
             if preferred in errors:
                 return preferred
         return 400

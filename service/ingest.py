@@ -79,6 +79,7 @@ class EntryResult:
     last_modified: datetime | None = None
     issues: list[Issue] = field(default_factory=list)
     body: bytes | None = None  # the resource as now served, for Prefer: return=representation
+    suspect_drop: bool = False  # not stored, though it looks like a watched result sent under a wrong code
 
 
 @dataclass
@@ -89,6 +90,7 @@ class _Prepared:
     observation: IncomingObservation | None = None
     insulin: IncomingInsulin | None = None
     reason: str = ""
+    suspect: bool = False
     if_none_exist: bool = False
     update_refused: Issue | None = None
     root: str = ""  # FHIRPath of the resource, for notes on the stored entry
@@ -212,7 +214,15 @@ class Ingestor:
         details = {f"status-{k}": str(v) for k, v in counts.items()} | {"entries": str(len(results))}
         facts = AuditFacts(subtype=interaction, recorded=self.clock.now(), requester=requester, details=details,
                            outcome="0" if all(r.status < 400 for r in results) else "4")
-        record_audit(session=session, events=[(facts, None)], base_url=self.settings.base_url)
+        events = [(facts, None)]
+        suspect = sum(r.suspect_drop for r in results)
+        if suspect:
+            # Its own event, so that the summary counts such drops per client without reading every
+            # ingest event: the sender's mapping needs fixing.
+            events.append((AuditFacts(subtype="dropped-code", recorded=facts.recorded, requester=requester,
+                                      outcome="4", outcome_desc="results under a likely mistyped code were not stored",
+                                      details={"dropped": str(suspect)}), None))
+        record_audit(session=session, events=events, base_url=self.settings.base_url)
 
     def _audit_refusal(self, requester: Requester | None, interaction: str, entries: int) -> None:
         if requester is None:
@@ -256,7 +266,7 @@ class Ingestor:
         if_none_exist = _check_request(e, rtype)
         found = triage(resource, self.insulin)
         if found.kind is Kind.IGNORED:
-            return _Prepared(Kind.IGNORED, [], reason=found.reason)
+            return _Prepared(Kind.IGNORED, [], reason=found.reason, suspect=found.suspect)
         # One cheap serialisation tells whether the two tree walks below can find anything at all.
         blob = orjson.dumps(resource)
         warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone,
@@ -356,6 +366,11 @@ class Ingestor:
                 results.append(EntryResult(200, issues=[*p.warnings, Issue(
                     "informational", "patient identity recorded; lytestream keeps identifiers only",
                     severity="information")]))
+            elif p.suspect:
+                # Dropped like any unwatched code, but said as a warning and counted: a feed sending
+                # sodium under a typo would otherwise lose every sodium in silence.
+                results.append(EntryResult(200, issues=[Issue("code-invalid", p.reason, ("Observation.code",),
+                                                              severity="warning")], suspect_drop=True))
             else:
                 results.append(EntryResult(200, issues=[Issue("informational", p.reason, severity="information")]))
         if touched and self.on_change is not None:

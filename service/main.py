@@ -7,6 +7,7 @@ import random
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from datetime import timedelta
+from urllib.parse import urlsplit
 
 import httpx
 from fastapi import FastAPI, Request
@@ -20,7 +21,8 @@ from service.api.fhir_io import outcome_response
 from service.api.intake import BodyAborted, BodyIntake
 from service.api.last_resort import LastResort, internal_error
 from service.api.refusals import RefusalAudit, RefusalLimiter
-from service.api.routes import audit, flags, ingest, meta, read, subscriptions, summary
+from service.api.routes import audit, conformance, flags, ingest, meta, read, subscriptions, summary
+from service.api.wire import FhirWire
 from service.arrivals import ArrivalReview
 from service.auth.deps import Authenticator, install_auth
 from service.clock import Clock, SystemClock
@@ -82,10 +84,13 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app.state.ctx = ctx
     app.add_middleware(BodyIntake, max_body_bytes=ctx.settings.max_body_bytes,
                        timeout_s=ctx.settings.body_timeout_seconds, slots=ctx.settings.max_concurrent_bodies)
+    # Outermost: the trailing-slash base and a 406 come before anything reads the request.
+    app.add_middleware(FhirWire, base_path=urlsplit(ctx.settings.base_url).path or "/fhir")
     authenticator = Authenticator(ctx.settings.auth, db=ctx.db, clock=ctx.clock)
     install_auth(app, authenticator, on_refused=RefusalAudit(db=ctx.db, clock=ctx.clock,
                                                              base_url=ctx.settings.base_url, limiter=ctx.refusals))
     app.include_router(meta.router)
+    app.include_router(conformance.router)  # before read.router, like summary
     app.include_router(summary.router)  # before read.router: /fhir/Flag/$summary is not a Flag id
     app.include_router(ingest.router)
     app.include_router(flags.router)
@@ -113,9 +118,14 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
         return outcome_response([Issue("not-found", str(exc), status=404)], 404)
 
     @app.exception_handler(HTTPException)
-    async def _http(_: Request, exc: HTTPException) -> Response:
+    async def _http(request: Request, exc: HTTPException) -> Response:
         code = {404: "not-found", 405: "not-supported"}.get(exc.status_code, "processing")
-        return outcome_response([Issue(code, str(exc.detail))], exc.status_code)
+        detail = str(exc.detail)
+        if exc.status_code == 404:
+            # A path no route serves: say where FHIR is, so a misconfigured client can correct its base.
+            detail = (f"{request.method} {request.url.path}: {detail.lower()}; the FHIR base of this server is "
+                      f"{ctx.settings.base_url} (its CapabilityStatement at {ctx.settings.base_url}/metadata)")
+        return outcome_response([Issue(code, detail)], exc.status_code)
 
     @app.exception_handler(RequestValidationError)
     async def _invalid(_: Request, exc: RequestValidationError) -> Response:

@@ -24,10 +24,15 @@ _HEADERS = {"content-type": "application/fhir+json", "accept": "application/fhir
 
 @dataclass
 class ReplaySummary:
+    """What became of each line: stored, recorded (Patient identities), dropped or refused."""
+
     total: int = 0
-    accepted: int = 0
-    rejected: int = 0
-    errors: list[str] = field(default_factory=list)
+    stored: int = 0  # a result or administration held now (created, updated or already held)
+    recorded: int = 0  # Patient entries: identifiers recorded, nothing else kept
+    dropped: int = 0  # answered 2xx but not stored: not watched (the answer says why)
+    refused: int = 0  # answered 4xx/5xx, or not a FHIR resource
+    errors: list[str] = field(default_factory=list)  # one line per refusal
+    warnings: list[str] = field(default_factory=list)  # drops the service thinks are mistakes (e.g. a code typo)
 
 
 def to_entry(resource: dict[str, Any]) -> dict[str, Any]:
@@ -52,7 +57,7 @@ def _chunks(path: Path, size: int, summary: ReplaySummary) -> Iterator[list[tupl
                 if not isinstance(resource, dict):
                     raise ValueError("not a JSON object")
             except ValueError as exc:
-                summary.rejected += 1
+                summary.refused += 1
                 summary.errors.append(f"line {number}: not a FHIR resource ({exc})")
                 continue
             chunk.append((number, resource))
@@ -63,10 +68,10 @@ def _chunks(path: Path, size: int, summary: ReplaySummary) -> Iterator[list[tupl
         yield chunk
 
 
-def _describe(outcome: dict[str, Any]) -> str:
+def _describe(outcome: dict[str, Any], severities: tuple[str, ...] = ("error", "fatal")) -> str:
     issues = outcome.get("issue") or []
     return "; ".join(f"{i.get('diagnostics', i.get('code'))} at {','.join(i.get('expression', []))}"
-                     for i in issues if i.get("severity") in ("error", "fatal"))
+                     for i in issues if i.get("severity") in severities)
 
 
 def replay_file(path: Path, base_url: str, *, bundle_size: int, console: Console,
@@ -92,21 +97,31 @@ def _send(http: httpx.Client, base_url: str, chunk: list[tuple[int, dict[str, An
     entries = [to_entry(r) for _, r in chunk]
     bundle = {"resourceType": "Bundle", "type": "transaction", "entry": entries}
     response = http.post(base_url.rstrip("/"), content=orjson.dumps(bundle), headers=_HEADERS)
-    if response.status_code == 200:
-        summary.accepted += len(chunk)
-        return
-    # Find the bad lines: the same entries as a batch, judged one by one.
-    bundle["type"] = "batch"
-    response = http.post(base_url.rstrip("/"), content=orjson.dumps(bundle), headers=_HEADERS)
     if response.status_code != 200:
-        summary.rejected += len(chunk)
+        # Find the bad lines: the same entries as a batch, judged one by one.
+        bundle["type"] = "batch"
+        response = http.post(base_url.rstrip("/"), content=orjson.dumps(bundle), headers=_HEADERS)
+    if response.status_code != 200:
+        summary.refused += len(chunk)
         summary.errors.append(f"lines {chunk[0][0]}-{chunk[-1][0]}: HTTP {response.status_code} "
                               f"{_describe(response.json()) if response.content else ''}")
         return
-    for (number, _), entry in zip(chunk, response.json().get("entry", []), strict=False):
-        status = entry.get("response", {}).get("status", "")
-        if status.startswith("2"):
-            summary.accepted += 1
-        else:
-            summary.rejected += 1
-            summary.errors.append(f"line {number}: {status} {_describe(entry['response'].get('outcome', {}))}")
+    for (number, resource), entry in zip(chunk, response.json().get("entry", []), strict=False):
+        _count(summary, number, resource, entry.get("response", {}))
+
+
+def _count(summary: ReplaySummary, number: int, resource: dict[str, Any], response: dict[str, Any]) -> None:
+    status = str(response.get("status", ""))
+    outcome = response.get("outcome", {})
+    if not status.startswith("2"):
+        summary.refused += 1
+        summary.errors.append(f"line {number}: {status} {_describe(outcome)}")
+    elif response.get("location"):
+        summary.stored += 1
+    elif resource.get("resourceType") == "Patient":
+        summary.recorded += 1
+    else:
+        summary.dropped += 1
+        warned = _describe(outcome, ("warning",))
+        if warned:
+            summary.warnings.append(f"line {number}: not stored: {warned}")

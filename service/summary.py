@@ -158,6 +158,9 @@ class SummaryFacts:
     escalations: Sequence[EscalationFact] = ()
     outbox: Sequence[OutboxFact] = ()
     audit_counts: Mapping[str, int] = field(default_factory=dict)
+    # Results not stored because their code looked like a watched one sent wrong, per client, over
+    # [start, end) (already counted, like audit_counts).
+    suspect_drops: Mapping[str, int] = field(default_factory=dict)
 
 
 # -------------------------------------------------------------------------------------------- figures
@@ -228,6 +231,7 @@ class Summary:
     audit_events: dict[str, int]
     lines: tuple[FlagLine, ...]
     not_evaluated: dict[str, int] = field(default_factory=dict)  # results stored in the range, by reason
+    suspect_drops: dict[str, int] = field(default_factory=dict)  # per client: see SummaryFacts
 
 
 # ------------------------------------------------------------------------------------------ computing
@@ -324,6 +328,7 @@ def summarise(facts: SummaryFacts, *, start: datetime, end: datetime) -> Summary
         audit_events=dict(sorted(facts.audit_counts.items())),
         lines=tuple(lines),
         not_evaluated=dict(sorted(Counter(r.not_evaluated for r in results if r.not_evaluated).items())),
+        suspect_drops=dict(sorted(facts.suspect_drops.items())),
     )
 
 
@@ -366,6 +371,8 @@ def summary_json(s: Summary) -> dict[str, Any]:
             "flags_per_patient_day": s.flags_per_patient_day,
         },
         "results_not_evaluated": {"count": sum(s.not_evaluated.values()), "by_reason": s.not_evaluated},
+        "results_dropped_under_suspect_codes": {"count": sum(s.suspect_drops.values()),
+                                                "by_client": s.suspect_drops},
         "result_to_flag": _latency_json(s.result_to_flag),
         "flag_to_acknowledgement": {**_latency_json(s.flag_to_ack), "unacknowledged": s.unacknowledged},
         "escalations": {"count": s.escalations, "flags_escalated": s.flags_escalated},
@@ -381,6 +388,8 @@ def summary_json(s: Summary) -> dict[str, Any]:
             "not_evaluated": "results stored in the range whose current version no rule can read, by "
                              "reason; a result collected before the look-back window is evaluated in its "
                              "own window and is not counted here",
+            "dropped_under_suspect_codes": "results not stored because their code looked like a watched "
+                                           "LOINC code sent wrong (check digit, system), per sending client",
         },
         "caution": CAUTION,
     }

@@ -28,8 +28,8 @@ def test_replaying_a_file_twice_changes_nothing_the_second_time(client: TestClie
     console = Console(file=io.StringIO())
     first = replay_file(feed, "http://testserver/fhir", bundle_size=3, console=console, client=client)
     second = replay_file(feed, "http://testserver/fhir", bundle_size=3, console=console, client=client)
-    assert (first.accepted, first.rejected) == (7, 0)
-    assert (second.accepted, second.rejected) == (7, 0)
+    assert (first.stored, first.refused) == (7, 0)
+    assert (second.stored, second.refused) == (7, 0)
     found = client.get("/fhir/Observation?_count=100").json()
     assert found["total"] == 7
     assert {e["resource"]["meta"]["versionId"] for e in found["entry"]} == {"1"}
@@ -44,7 +44,7 @@ def test_bad_lines_are_reported_and_good_ones_land(client: TestClient, tmp_path:
     ])
     console = Console(file=io.StringIO())
     summary = replay_file(feed, "http://testserver/fhir", bundle_size=10, console=console, client=client)
-    assert (summary.total, summary.accepted, summary.rejected) == (4, 2, 2)
+    assert (summary.total, summary.stored, summary.refused) == (4, 2, 2)
     assert any(e.startswith("line 2:") for e in summary.errors)
     assert any(e.startswith("line 3: 400") for e in summary.errors)
     assert client.get("/fhir/Observation").json()["total"] == 2
@@ -62,5 +62,26 @@ def test_the_demo_ward_replays_without_a_refusal_when_its_day_is_over(context, t
     with authorised_client(context) as client:
         summary = replay_file(feed, "http://testserver/fhir", bundle_size=100, console=Console(file=io.StringIO()),
                               client=client)
-    assert summary.rejected == 0, summary.errors[:3]
-    assert summary.accepted == summary.total
+    assert summary.refused == 0, summary.errors[:3]
+    assert summary.stored + summary.recorded + summary.dropped == summary.total
+    assert summary.stored > 0
+
+
+def test_dropped_entries_are_counted_as_dropped_not_accepted_and_suspect_codes_are_named(
+    client: TestClient, tmp_path: Path
+) -> None:
+    # 2160-0 is creatinine in LOINC (not watched); 2951-3 has a wrong LOINC check digit (2951-2,
+    # serum sodium, has 2 — LOINC Users' Guide, mod-10 check digit).
+    patient = {"resourceType": "Patient", "identifier": [{"system": "https://hospital.example.org/mrn",
+                                                          "value": "M1"}]}
+    feed = write(tmp_path / "feed.ndjson", [
+        orjson.dumps(observation("na")),
+        orjson.dumps(observation("cr", code="2160-0", unit="umol/L")),
+        orjson.dumps(observation("typo", code="2951-3")),
+        orjson.dumps(patient),
+    ])
+    summary = replay_file(feed, "http://testserver/fhir", bundle_size=10, console=Console(file=io.StringIO()),
+                          client=client)
+    assert (summary.total, summary.stored, summary.dropped, summary.recorded, summary.refused) == (4, 1, 2, 1, 0)
+    (warning,) = summary.warnings
+    assert warning.startswith("line 3: not stored") and "2951-2" in warning

@@ -12,12 +12,13 @@ from service.api.context import AppContext
 from service.db.audit import record_audit
 from service.db.reads import patient_key_for
 from service.fhir.audit_render import AuditFacts, Requester
+from service.fhir.references import served_subject_alias
 
 __all__ = ["audit_patient_access"]
 
 
 def audit_patient_access(ctx: AppContext, who: Requester, rows: list[bytes], *, subtype: str,
-                         query: str | None = None) -> None:
+                         query: str | None = None, operation: str | None = None) -> None:
     """One AuditEvent per patient among ``rows`` (stored resource JSON); none returned leaves one Query event."""
     by_patient: dict[str, list[str]] = {}
     for row in rows:
@@ -29,12 +30,12 @@ def audit_patient_access(ctx: AppContext, who: Requester, rows: list[bytes], *, 
     with ctx.db.session(write=True) as session:
         events: list[tuple[AuditFacts, str | None]] = []
         if not by_patient:
-            events.append((AuditFacts(subtype=subtype, recorded=now, requester=who, query=query), None))
+            events.append((AuditFacts(subtype=subtype, recorded=now, requester=who, query=query,
+                                      operation=operation), None))
         for subject_json, refs in by_patient.items():
             subject = orjson.loads(subject_json)
-            alias = (f"ref:{subject['reference']}" if "reference" in subject
-                     else f"id:{subject['identifier']['system']}|{subject['identifier']['value']}")
+            alias = served_subject_alias(subject)
             facts = AuditFacts(subtype=subtype, recorded=now, requester=who, patient=subject, what=refs,
-                               query=query)
+                               query=query, operation=operation)
             events.append((facts, patient_key_for(session=session, alias=alias)))
         record_audit(session=session, events=events, base_url=ctx.settings.base_url)

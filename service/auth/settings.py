@@ -58,6 +58,13 @@ class AuthSettings(BaseModel):
         default=30.0, ge=0, description="an unknown kid refetches the JWKS at most this often"
     )
     jwks_timeout_seconds: float = Field(default=5.0, gt=0)
+    token_endpoint: str | None = Field(
+        default=None, description="the authorisation server's token endpoint, announced by SMART discovery "
+                                  "(/.well-known/smart-configuration) and the CapabilityStatement; needed in jwt "
+                                  "and both modes")
+    authorization_endpoint: str | None = Field(
+        default=None, description="its authorize endpoint, announced beside it when set (backend services, "
+                                  "which use client_credentials, need none)")
     require_at_jwt_typ: bool = Field(
         default=True, description="RFC 9068: the JWT header `typ` must be at+jwt (or application/at+jwt)"
     )
@@ -71,7 +78,7 @@ class AuthSettings(BaseModel):
                              "(never none, never HS* against a public key set)")
         return tuple(dict.fromkeys(value))
 
-    @field_validator("jwks_url")
+    @field_validator("jwks_url", "token_endpoint", "authorization_endpoint")
     @classmethod
     def _https(cls, value: str | None) -> str | None:
         if value is None:
@@ -79,13 +86,13 @@ class AuthSettings(BaseModel):
         parts = urlsplit(value)
         local = parts.hostname in ("localhost", "127.0.0.1", "::1")
         if parts.scheme != "https" and not (parts.scheme == "http" and local):
-            raise ValueError("jwks_url must be https (plain http only to localhost)")
+            raise ValueError("the authorisation server's URLs must be https (plain http only to localhost)")
         return value
 
     @model_validator(mode="after")
     def _jwt_needs_its_settings(self) -> AuthSettings:
         if self.mode in ("jwt", "both") and not self.disabled:
-            missing = [n for n in ("issuer", "audience", "jwks_url") if not getattr(self, n)]
+            missing = [n for n in ("issuer", "audience", "jwks_url", "token_endpoint") if not getattr(self, n)]
             if missing:
                 raise ValueError(f"mode {self.mode!r} needs {', '.join(missing)}")
         return self

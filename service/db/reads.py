@@ -7,7 +7,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import and_, func, or_, select, true
+from sqlalchemy import and_, false, func, or_, select, true
 from sqlmodel import Session
 
 from service.db.tables import FhirVersion, ObservationRecord, PatientAlias
@@ -53,7 +53,12 @@ def patient_key_for(*, session: Session, alias: str) -> str | None:
 @dataclass(frozen=True)
 class ObservationQuery:
     patient_key: str | None = None
-    codes: Sequence[str] = ()
+    codes: Sequence[str] | None = None  # None: any code
+    ids: Sequence[str] | None = None
+    identifiers: Sequence[Sequence[tuple[str | None, str]]] = ()  # AND of ORs of (system or any, value)
+    statuses: Sequence[str] | None = None
+    updated_from: datetime | None = None
+    updated_to: datetime | None = None
     date_from: datetime | None = None  # inclusive
     date_to: datetime | None = None  # exclusive
     sort: str = "-date"
@@ -66,8 +71,20 @@ def search_observations(*, session: Session, q: ObservationQuery) -> tuple[list[
     conds = []
     if q.patient_key is not None:
         conds.append(_OBS.c.patient_key == q.patient_key)
-    if q.codes:
+    if q.codes is not None:
         conds.append(_OBS.c.loinc.in_(list(q.codes)))
+    if q.ids is not None:
+        conds.append(_OBS.c.id.in_(list(q.ids)))
+    if q.statuses is not None:
+        conds.append(_OBS.c.status.in_(list(q.statuses)))
+    for alternatives in q.identifiers:
+        conds.append(or_(false(), *(and_(_OBS.c.identifier_value == value,
+                                         true() if system is None else _OBS.c.identifier_system == system)
+                                    for system, value in alternatives)))
+    if q.updated_from is not None:
+        conds.append(_OBS.c.last_updated >= q.updated_from)
+    if q.updated_to is not None:
+        conds.append(_OBS.c.last_updated < q.updated_to)
     if q.date_from is not None:
         conds.append(_OBS.c.effective >= q.date_from)
     if q.date_to is not None:
@@ -97,13 +114,14 @@ def _served_page(session: Session, table: Any, rtype: str, conds: list[Any], sor
 @dataclass(frozen=True)
 class FlagQuery:
     patient_key: str | None = None
-    statuses: Sequence[str] = ()
-    rules: Sequence[str] = ()
-    priorities: Sequence[str] = ()
+    statuses: Sequence[str] | None = None  # None: any
+    rules: Sequence[str] | None = None
+    priorities: Sequence[str] | None = None
     date_from: datetime | None = None  # the flag's period overlaps [date_from, date_to)
     date_to: datetime | None = None
     updated_from: datetime | None = None
     updated_to: datetime | None = None
+    details: Sequence[str] | None = None  # cites any of these: Type/id (any version) or Type/id/_history/n
     sort: str = "-_lastUpdated"
     count: int = 50
     offset: int = 0
@@ -117,11 +135,11 @@ def search_flags(*, session: Session, q: FlagQuery) -> tuple[list[bytes], int]:
     conds = []
     if q.patient_key is not None:
         conds.append(f.c.patient_key == q.patient_key)
-    if q.statuses:
+    if q.statuses is not None:
         conds.append(f.c.status.in_(list(q.statuses)))
-    if q.rules:
+    if q.rules is not None:
         conds.append(f.c.rule.in_(list(q.rules)))
-    if q.priorities:
+    if q.priorities is not None:
         conds.append(f.c.priority.in_(list(q.priorities)))
     if q.date_from is not None:
         conds.append(or_(f.c.period_end.is_(None), f.c.period_end >= q.date_from))
@@ -131,7 +149,16 @@ def search_flags(*, session: Session, q: FlagQuery) -> tuple[list[bytes], int]:
         conds.append(f.c.last_updated >= q.updated_from)
     if q.updated_to is not None:
         conds.append(f.c.last_updated < q.updated_to)
+    if q.details is not None:
+        conds.append(or_(false(), *(f.c.evidence.like(_cites(ref), escape="\\") for ref in q.details)))
     return _served_page(session, f, "Flag", conds, {"date": f.c.period_start}, q.sort, q.count, q.offset)
+
+
+def _cites(ref: str) -> str:
+    """A LIKE pattern for the evidence JSON list holding ``ref`` (a version-specific one, or any version)."""
+    literal = ref.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_")
+    return f'%"{literal}"%' if "/_history/" in ref else f'%"{literal}/\\_history/%'
+
 
 
 def read_references(*, session: Session, references: Iterable[str]) -> list[bytes]:

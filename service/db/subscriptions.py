@@ -24,6 +24,9 @@ from service.db.tables import DeliveryAttempt, FhirVersion, FlagRecord, Subscrip
 from service.notify.topics import SubscriptionSpec, matches, parse_subscription
 
 __all__ = [
+    "DELETED",
+    "WITHHELD",
+    "keep_withheld_headers",
     "claim_subscriptions",
     "create_subscription",
     "enqueue_events",
@@ -42,6 +45,9 @@ _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 _A = DeliveryAttempt.__table__  # type: ignore[attr-defined]
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
 _F = FlagRecord.__table__  # type: ignore[attr-defined]
+# Internal status of a deleted subscription: never served (reads answer 410 Gone), never sent to, never counting.
+DELETED = "deleted"
+WITHHELD = "(withheld)"  # what a reader sees in place of a channel header's value
 # Still counting while in error (the IG: keep incrementing eventsSinceSubscriptionStart).
 _COUNTING = ("requested", "active", "error")
 
@@ -63,12 +69,40 @@ def served_subscription(row: Any) -> dict[str, Any]:
     channel = body.get("channel") or {}
     if channel.get("header"):
         # Headers usually carry the subscriber's credentials: never echoed back to readers.
-        channel["header"] = [f"{h.split(':', 1)[0]}: (withheld)" for h in channel["header"]]
+        channel["header"] = [f"{h.split(':', 1)[0]}: {WITHHELD}" for h in channel["header"]]
     if row.error:
         body["error"] = row.error
     else:
         body.pop("error", None)
     return body
+
+
+def keep_withheld_headers(submitted: dict[str, Any], stored: dict[str, Any]) -> list[tuple[int, str]]:
+    """Put the stored value back into each submitted header that carries the masked value, in place.
+
+    A client that reads its subscription, changes something and PUTs it back sends ``Name: (withheld)``;
+    that means "keep what you hold", never a new value. Returns (index, name) of masked headers no stored
+    header of that name backs, which the caller refuses.
+    """
+    held = {}
+    for h in (stored.get("channel") or {}).get("header") or []:
+        name, _, value = h.partition(":")
+        held[name.strip().lower()] = h
+    headers = (submitted.get("channel") or {}).get("header")
+    if not isinstance(headers, list):
+        return []
+    missing = []
+    for i, h in enumerate(headers):
+        if not isinstance(h, str):
+            continue
+        name, _, value = h.partition(":")
+        if value.strip() != WITHHELD:
+            continue
+        if name.strip().lower() in held:
+            headers[i] = held[name.strip().lower()]
+        else:
+            missing.append((i, name.strip()))
+    return missing
 
 
 def create_subscription(*, session: Session, resource: dict[str, Any], spec: SubscriptionSpec,

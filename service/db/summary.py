@@ -75,6 +75,7 @@ def load_facts(*, session: Session, start: datetime, end: datetime, policy: Poli
         escalations=_escalations(session, cohort),
         outbox=_outbox(session, start, end),
         audit_counts=_audit_counts(session, start, end),
+        suspect_drops=_suspect_drops(session, start, end),
     )
 
 
@@ -173,6 +174,17 @@ def _outbox(session: Session, start: datetime, end: datetime) -> list[OutboxFact
         .select_from(_E.outerjoin(tries, tries.c.event_id == _E.c.id))
         .where(_E.c.created_at >= start, _E.c.created_at < end).order_by(_E.c.id))
     return [OutboxFact(int(eid), kind, status, at, int(n)) for eid, kind, status, at, n in rows]
+
+
+def _suspect_drops(session: Session, start: datetime, end: datetime) -> dict[str, int]:
+    """Per client, the results dropped under a likely mistyped code (the ``dropped-code`` AuditEvents)."""
+    out: dict[str, int] = {}
+    for client, body in session.execute(select(_AUDIT.c.client, _AUDIT.c.resource).where(
+            _AUDIT.c.subtype == "dropped-code", _AUDIT.c.recorded >= start, _AUDIT.c.recorded < end)):
+        event = orjson.loads(body)
+        n = sum(int(d["valueString"]) for e in event["entity"] for d in e.get("detail", ()) if d["type"] == "dropped")
+        out[str(client)] = out.get(str(client), 0) + n
+    return out
 
 
 def _audit_counts(session: Session, start: datetime, end: datetime) -> dict[str, int]:

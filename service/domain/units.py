@@ -1,12 +1,24 @@
 """UCUM units each kind of LOINC term accepts, and exact conversion to the canonical unit.
 
+Any valid UCUM code whose dimension fits the term's LOINC property is accepted: the code is parsed
+by ucumvert, a maintained UCUM library built from the UCUM essence (so the litre's two symbols l/L,
+prefixes, ``10*`` powers and annotations such as ``{H2O}`` all behave as UCUM says). The property
+decides the rest: a substance concentration (moles per volume; equivalents for the monovalent ions
+sodium and potassium only), a mass concentration (converted with the analyte's molar mass), or an
+osmolality (osmoles or moles per mass).
+
 Canonical units: mmol/L for sodium, potassium, glucose, urea and calcium; mosm/kg for osmolality.
 Factors come from molar masses (IUPAC conventional atomic weights C 12.011, H 1.008, N 14.007,
 O 15.999): glucose C6H12O6 180.156 g/mol, urea CH4N2O 60.056 g/mol, urea nitrogen 2 N = 28.014 g/mol.
-A test checks them against a general units library.
+Tests check them against the UCUM library and a general units library.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
+from enum import Enum
+from functools import lru_cache
+from typing import Any
 
 from service.domain.catalogue import UREA_NITROGEN_CODES, CatalogueEntry, Quantity
 from service.domain.values import Analyte
@@ -38,53 +50,108 @@ class UnitNotAccepted(ValueError):
         self.accepted = accepted
 
 
-def _mg_per_dl_to_mmol_per_l(molar_mass: float) -> float:
-    # 1 mg/dL = 10 mg/L; divided by g/mol gives mmol/L.
-    return 10.0 / molar_mass
-
-
 # Display forms that interface engines put in Quantity.unit when they send no UCUM code.
 # "mEq/L" and "mOsm/kg" are not case-sensitive UCUM, so they are accepted only as unit text.
-_TEXT_ALIASES = {"mEq/L": "meq/L", "mmol/l": "mmol/L", "mg/dl": "mg/dL", "mOsm/kg": "mosm/kg"}
+_TEXT_ALIASES = {"mEq/L": "meq/L", "mOsm/kg": "mosm/kg", "mOsm/kg H2O": "mosm/kg"}
 
 
-def _table(entry: CatalogueEntry) -> dict[str, float]:
-    """UCUM code → factor to canonical, for one catalogue entry."""
-    if entry.quantity is Quantity.OSMOLALITY:
-        return {"mosm/kg": 1.0, "mmol/kg": 1.0}
-    if entry.quantity is Quantity.MOLAR:
-        if entry.analyte in (Analyte.SODIUM, Analyte.POTASSIUM):
-            # Monovalent ions: one equivalent is one mole.
-            return {"mmol/L": 1.0, "meq/L": 1.0}
-        return {"mmol/L": 1.0}
+class _Amount(Enum):
+    """What the numerator of a unit counts."""
+
+    MOLE = "mol"
+    EQUIVALENT = "eq"
+    OSMOLE = "osm"
+    MASS = "g"
+
+
+@dataclass(frozen=True, slots=True)
+class _Parsed:
+    amount: _Amount
+    per_volume: bool  # per litre (else per kilogram)
+    scale: float  # the unit in mmol/L, mmol/kg or g/L (mosm/kg counted as mmol/kg)
+
+
+@lru_cache(maxsize=1)
+def _registry() -> Any:
+    # Imported on first use: building the registry from the UCUM essence takes about a second.
+    from ucumvert import PintUcumRegistry  # type: ignore[import-untyped]
+
+    return PintUcumRegistry()
+
+
+@lru_cache(maxsize=1024)
+def _parse(code: str) -> _Parsed | None:
+    """The UCUM code's amount kind, denominator and scale; None if it is no UCUM code of a concentration
+    or osmolality."""
+    if not code or code != code.strip():
+        return None
+    reg = _registry()
+    try:
+        q = reg.from_ucum(code)
+    except Exception:  # noqa: BLE001 - the library raises several kinds for codes outside UCUM
+        return None
+    names = [str(u) for u in q.units._units]
+    amount = (_Amount.OSMOLE if any("osmole" in n for n in names)
+              else _Amount.EQUIVALENT if any("equivalent" in n for n in names)
+              else _Amount.MOLE if any(n.endswith("mole") for n in names) else _Amount.MASS)
+    dims = dict(q.dimensionality)
+    if amount is _Amount.MASS:
+        if dims != {"[mass]": 1, "[length]": -3}:
+            return None
+        return _Parsed(amount, True, float(q.to("g/L").magnitude))
+    if dims == {"[substance]": 1, "[length]": -3}:
+        return _Parsed(amount, True, float(q.to("mmol/L").magnitude))
+    if dims == {"[substance]": 1, "[mass]": -1}:
+        return _Parsed(amount, False, float(q.to("mmol/kg").magnitude))
+    return None
+
+
+def _molar_mass(entry: CatalogueEntry) -> float:
     if entry.analyte is Analyte.GLUCOSE:
-        return {"mg/dL": _mg_per_dl_to_mmol_per_l(GLUCOSE_MOLAR_MASS)}
+        return GLUCOSE_MOLAR_MASS
     if entry.analyte is Analyte.CALCIUM:
-        return {"mg/dL": _mg_per_dl_to_mmol_per_l(CALCIUM_MOLAR_MASS)}
+        return CALCIUM_MOLAR_MASS
     if entry.analyte is Analyte.UREA:
-        mass = UREA_NITROGEN_MOLAR_MASS if entry.code in UREA_NITROGEN_CODES else UREA_MOLAR_MASS
-        return {"mg/dL": _mg_per_dl_to_mmol_per_l(mass)}
-    raise AssertionError(f"no unit table for {entry.code}")  # the catalogue has no such entry
+        return UREA_NITROGEN_MOLAR_MASS if entry.code in UREA_NITROGEN_CODES else UREA_MOLAR_MASS
+    raise AssertionError(f"no molar mass for {entry.code}")  # the catalogue has no such entry
+
+
+def _factor(entry: CatalogueEntry, unit: _Parsed) -> float | None:
+    """Multiply by this to get the entry's canonical unit; None if the unit does not fit the property."""
+    if entry.quantity is Quantity.OSMOLALITY:
+        ok = not unit.per_volume and unit.amount in (_Amount.OSMOLE, _Amount.MOLE)
+    elif entry.quantity is Quantity.MOLAR:
+        # Equivalents only where one equivalent is one mole: the monovalent ions.
+        monovalent = entry.analyte in (Analyte.SODIUM, Analyte.POTASSIUM)
+        ok = unit.per_volume and (unit.amount is _Amount.MOLE or (unit.amount is _Amount.EQUIVALENT and monovalent))
+    else:
+        ok = unit.per_volume and unit.amount is _Amount.MASS
+        if ok:
+            return unit.scale / _molar_mass(entry) * 1000  # g/L / (g/mol) = mol/L
+    return unit.scale if ok else None
 
 
 def accepted_units(entry: CatalogueEntry) -> tuple[str, ...]:
-    """The UCUM codes this LOINC term accepts, in a stable order."""
-    return tuple(_table(entry))
+    """Examples of the UCUM codes this LOINC term accepts (any UCUM code of the same property is)."""
+    if entry.quantity is Quantity.OSMOLALITY:
+        return ("mosm/kg", "mmol/kg", "mosm/kg{H2O}")
+    if entry.quantity is Quantity.MOLAR:
+        if entry.analyte in (Analyte.SODIUM, Analyte.POTASSIUM):
+            return ("mmol/L", "meq/L", "umol/L")
+        return ("mmol/L", "umol/L")
+    return ("mg/dL", "g/L", "mg/L")
 
 
 def to_canonical(entry: CatalogueEntry, value: float, *, code: str | None, text: str | None) -> float:
     """``value`` in the entry's canonical unit.
 
     ``code`` is the UCUM code (Quantity.code) and wins; ``text`` (Quantity.unit) is used only when
-    no code was sent. Raises UnitNotAccepted naming the unit and the accepted ones.
+    no code was sent, read as UCUM or as a common display form. Raises UnitNotAccepted naming the
+    unit and examples of accepted ones.
     """
-    table = _table(entry)
-    if code is not None:
-        factor = table.get(code)
-        unit = code
-    else:
-        unit = text or ""
-        factor = table.get(unit, table.get(_TEXT_ALIASES.get(unit, ""), 0.0)) or None
+    unit = code if code is not None else (text or "")
+    parsed = _parse(unit) if code is not None else _parse(_TEXT_ALIASES.get(unit, unit))
+    factor = _factor(entry, parsed) if parsed is not None else None
     if factor is None:
-        raise UnitNotAccepted(unit, tuple(table))
+        raise UnitNotAccepted(unit, accepted_units(entry))
     return value * factor

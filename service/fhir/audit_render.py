@@ -29,6 +29,9 @@ _ACTIONS = {"create": "C", "update": "U", "read": "R", "vread": "R", "search-typ
 _PROFILES = {"read": ("PatientRead", "Read"), "vread": ("PatientRead", "Read"),
              "history-instance": ("PatientRead", "Read"), "search-type": ("PatientQuery", "Query"),
              "update": ("PatientUpdate", "Update"), "delete": ("PatientDelete", "Delete")}
+# Events of ours that are no RESTful interaction, and so claim no BALP profile. dropped-code: a
+# request's results under a likely mistyped code were not stored (counted per client).
+_OWN_SUBTYPES = {"dropped-code": "C"}
 # Our operations, by the RESTful interaction each amounts to: $acknowledge writes a new Flag version;
 # the others only read.
 _OPERATION_KIND = {"$acknowledge": "update", "$summary": "search-type", "$refusals": "search-type",
@@ -63,10 +66,14 @@ class AuditFacts:
 
 
 def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
+    if f.subtype == "disclose":
+        return _disclosure(f, base_url=base_url)
     kind = _OPERATION_KIND.get(f.operation, "create") if f.operation else f.subtype
     with_patient, without = _PROFILES.get(kind, ("PatientCreate", "Create"))
     profile = with_patient if f.patient else without
     subtype = [{"system": "http://hl7.org/fhir/restful-interaction", "code": f.subtype}]
+    if f.subtype in _OWN_SUBTYPES:
+        subtype = [{"system": f"{CANONICAL_BASE}/CodeSystem/audit-subtype", "code": f.subtype}]
     if f.operation:
         subtype = [{"system": f"{CANONICAL_BASE}/CodeSystem/operation", "code": f.operation.lstrip("$")}]
     client_agent: dict[str, Any] = {
@@ -102,17 +109,14 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
             "description": "request summary",
             "detail": [{"type": k, "valueString": v} for k, v in sorted(f.details.items())],
         })
-    entities.append({
-        "type": {"system": "https://profiles.ihe.net/ITI/BALP/CodeSystem/BasicAuditEntityType", "code": "XrequestId"},
-        "what": {"identifier": {"value": f.requester.request_id}},
-    })
+    entities.append(_request_id(f.requester.request_id))
     event: dict[str, Any] = {
         "resourceType": "AuditEvent",
         "meta": {"profile": [f"{BALP}/IHE.BasicAudit.{profile}"]},
         "type": {"system": "http://terminology.hl7.org/CodeSystem/audit-event-type", "code": "rest",
                  "display": "Restful Operation"},
         "subtype": subtype,
-        "action": _ACTIONS.get(kind, "E"),
+        "action": _ACTIONS.get(kind) or _OWN_SUBTYPES.get(kind, "E"),
         "recorded": fhir_instant(f.recorded),
         "outcome": f.outcome,
         "agent": [
@@ -121,13 +125,72 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
              "who": {"reference": "Device/lytestream"}, "requestor": False,
              "network": {"address": base_url, "type": "5"}},
         ],
-        "source": {"observer": {"reference": "Device/lytestream", "display": "lytestream"},
-                   "type": [{"system": "http://terminology.hl7.org/CodeSystem/security-source-type", "code": "4",
-                             "display": "Application Server"}]},
+        "source": _SOURCE,
         "entity": entities,
     }
     if f.outcome_desc:
         event["outcomeDesc"] = f.outcome_desc
-    if f.refused:
+    if f.refused or f.subtype in _OWN_SUBTYPES:
         del event["meta"]  # BALP's profiles describe successful interactions; this one was refused
+    return event
+
+
+_SOURCE = {"observer": {"reference": "Device/lytestream", "display": "lytestream"},
+           "type": [{"system": "http://terminology.hl7.org/CodeSystem/security-source-type", "code": "4",
+                     "display": "Application Server"}]}
+
+
+def _request_id(value: str) -> dict[str, Any]:
+    return {"type": {"system": "https://profiles.ihe.net/ITI/BALP/CodeSystem/BasicAuditEntityType",
+                     "code": "XrequestId"},
+            "what": {"identifier": {"value": value}}}
+
+
+def _disclosure(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
+    """A notification that carried a patient's Flag to a subscriber (BALP PrivacyDisclosure.Source).
+
+    The service is the source and sends of its own accord; the recipient is the subscription's owner,
+    at its endpoint's origin (``requester.address``: never the path or query, which may hold secrets).
+    """
+    recipient: dict[str, Any] = {
+        "type": {"coding": [{"system": "http://terminology.hl7.org/CodeSystem/v3-ParticipationType",
+                             "code": "IRCP", "display": "information recipient"}]},
+        "who": {"identifier": {"system": CLIENT_SYSTEM, "value": f.requester.client}},
+        "requestor": True,  # it asked for these notifications when it made the subscription
+    }
+    if f.requester.address:
+        recipient["network"] = {"address": f.requester.address, "type": "5"}
+    entities: list[dict[str, Any]] = [
+        {"type": {"system": _ENTITY_TYPE, "code": "2", "display": "System Object"},
+         "role": {"system": _OBJECT_ROLE, "code": "4", "display": "Domain Resource"},
+         "what": {"reference": ref}}
+        for ref in f.what
+    ]
+    if f.patient:
+        entities.append({"type": {"system": _ENTITY_TYPE, "code": "1", "display": "Person"},
+                         "role": {"system": _OBJECT_ROLE, "code": "1", "display": "Patient"},
+                         "what": dict(f.patient)})
+    if f.details:
+        entities.append({"type": {"system": _ENTITY_TYPE, "code": "2", "display": "System Object"},
+                         "description": "delivery",
+                         "detail": [{"type": k, "valueString": v} for k, v in sorted(f.details.items())]})
+    event: dict[str, Any] = {
+        "resourceType": "AuditEvent",
+        "meta": {"profile": [f"{BALP}/IHE.BasicAudit.PrivacyDisclosure.Source"]},
+        "type": {"system": _DCM, "code": "110106", "display": "Export"},
+        "subtype": [{"system": "http://terminology.hl7.org/CodeSystem/iso-21089-lifecycle", "code": "disclose"}],
+        "action": "R",
+        "recorded": fhir_instant(f.recorded),
+        "outcome": f.outcome,
+        "agent": [
+            {"type": {"coding": [{"system": _DCM, "code": "110153", "display": "Source Role ID"}]},
+             "who": {"reference": "Device/lytestream"}, "requestor": False,
+             "network": {"address": base_url, "type": "5"}},
+            recipient,
+        ],
+        "source": _SOURCE,
+        "entity": entities,
+    }
+    if f.outcome_desc:
+        event["outcomeDesc"] = f.outcome_desc
     return event

@@ -21,7 +21,17 @@ def _search(name: str, kind: str, doc: str, ours: bool = False) -> dict[str, str
     return param
 
 
-def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | None) -> dict[str, Any]:
+# Every search takes these (search.html#count, #summary, #total); other parameters are ignored with a warning
+# in the searchset's OperationOutcome unless the client sends Prefer: handling=strict (search.html#errors).
+_CONTROL = (
+    {"name": "_count", "type": "number", "documentation": "page size; 0 answers the total only"},
+    {"name": "_summary", "type": "token", "documentation": "count: the total only"},
+    {"name": "_total", "type": "token", "documentation": "none leaves the total out; estimate and accurate count"},
+)
+
+
+def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | None,
+                         oauth_uris: dict[str, Any] | None = None) -> dict[str, Any]:
     ingest = {
         "versioning": "versioned",
         "readHistory": True,
@@ -46,12 +56,15 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
             {
                 "mode": "server",
                 "documentation": (
+                    "Searches are lenient: an unsupported parameter is ignored and named in a warning of the "
+                    "searchset's OperationOutcome; Prefer: handling=strict makes it a 400. "
                     "Observations of the watched LOINC codes (sodium, potassium, glucose, osmolality, urea) and "
                     "insulin MedicationAdministrations are stored; other resources in a Bundle are acknowledged "
                     "and not stored. Patient entries only link identifiers. Creates and updates are keyed on "
                     "the business identifier: a resend is idempotent." + zone
                 ),
                 "security": {
+                    **({"extension": [oauth_uris]} if oauth_uris else {}),
                     "service": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/restful-security-service",
                                              "code": "SMART-on-FHIR"}]}],
                     "description": "Bearer token on every interaction but metadata: SMART v2 system scopes "
@@ -70,9 +83,14 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                         **ingest,
                         "searchParam": [
                             _search("patient", "reference", "Patient/id or identifier-based reference"),
-                            _search("code", "token", "LOINC code, system|code or code"),
+                            _search("code", "token", "LOINC code: http://loinc.org|code or code (another "
+                                    "system matches nothing)"),
                             _search("date", "date", "effective time; prefixes eq, ge, gt, le, lt"),
-                            _search("_count", "number", "page size"),
+                            _search("identifier", "token", "the business identifier, system|value"),
+                            _search("status", "token", "observation-status"),
+                            _search("_id", "token", "the resource id"),
+                            _search("_lastUpdated", "date", "when this version was written"),
+                            *_CONTROL,
                         ],
                     },
                     {
@@ -94,7 +112,9 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                             _search("status", "token", "active | inactive | entered-in-error", ours=True),
                             _search("code", "token", f"rule code ({RULE_SYSTEM})", ours=True),
                             _search("priority", "token", "PH | PM | PL (flag-priority)", ours=True),
-                            _search("_count", "number", "page size"),
+                            _search("detail", "reference", "a result the Flag cites (Observation/id); "
+                                    "_include=Flag:detail returns them", ours=True),
+                            *_CONTROL,
                         ],
                     },
                     {

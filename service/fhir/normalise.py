@@ -310,7 +310,7 @@ def _quantity(
             Issue(
                 "value",
                 f"unit {exc.unit!r} is not accepted for LOINC {entry.code} ({entry.display}); "
-                f"accepted UCUM units: {', '.join(exc.accepted)}",
+                f"send a UCUM unit of the term's property, e.g. {', '.join(exc.accepted)}",
                 (f"{path}.code" if code is not None else f"{path}.unit",),
                 status=422,
             ),

@@ -18,9 +18,16 @@ from urllib.parse import parse_qsl
 from service.errors import Issue
 from service.fhir.normalise import IncomingPatient, Invalid
 
-__all__ = ["BundleIdentities", "patient_aliases", "urn_references"]
+__all__ = ["BundleIdentities", "patient_aliases", "served_subject_alias", "urn_references"]
 
 BundleIdentities = Mapping[str, tuple[str, ...]]  # fullUrl → aliases of the Patient entry it names
+
+
+def served_subject_alias(subject: Mapping[str, Any]) -> str:
+    """The alias of a subject as the service serves it (a literal reference or one identifier)."""
+    if "reference" in subject:
+        return f"ref:{subject['reference']}"
+    return f"id:{subject['identifier']['system']}|{subject['identifier']['value']}"
 
 
 def patient_entry_aliases(patient: IncomingPatient, request_url: str | None) -> tuple[str, ...]:

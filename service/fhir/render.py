@@ -82,8 +82,7 @@ def searchset(
     resources: Sequence[dict[str, Any]],
     *,
     base: str,
-    self_url: str,
-    next_url: str | None,
+    links: dict[str, str],
     total: int | None,
     now: datetime,
     included: Sequence[dict[str, Any]] = (),
@@ -91,15 +90,12 @@ def searchset(
 ) -> dict[str, Any]:
     """A searchset; ``outcome`` issues (what was left out, and why) come as an OperationOutcome entry with
     search mode ``outcome``."""
-    links = [{"relation": "self", "url": self_url}]
-    if next_url:
-        links.append({"relation": "next", "url": next_url})
     bundle: dict[str, Any] = {
         "resourceType": "Bundle",
         "id": str(uuid.uuid4()),
         "type": "searchset",
         "timestamp": fhir_instant(now),
-        "link": links,
+        "link": [{"relation": rel, "url": url} for rel, url in links.items()],
         "entry": [
             {"fullUrl": f"{base}/{r['resourceType']}/{r['id']}", "resource": r, "search": {"mode": mode}}
             for rs, mode in ((resources, "match"), (included, "include"))

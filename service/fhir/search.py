@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import re
+from collections.abc import Collection
+from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 
 from service.errors import Issue, RequestRejected
 
-__all__ = ["date_bounds"]
+__all__ = ["Token", "codes_in_system", "date_bounds", "intersect", "tokens"]
 
 _PREFIX = re.compile(r"^(eq|ge|gt|le|lt)?(\d{4}(-\d{2}(-\d{2}(T.+)?)?)?)$")
 
@@ -52,3 +54,56 @@ def date_bounds(values: list[str], name: str = "date") -> tuple[datetime | None,
         if hi is not None:
             high = hi if high is None else min(high, hi)
     return low, high
+
+
+@dataclass(frozen=True)
+class Token:
+    """One token value (search.html#token): ``system|code``, ``|code`` (no system) or ``code`` (any system)."""
+
+    system: str | None
+    code: str
+
+    def in_system(self, system: str) -> bool:
+        return self.system is None or self.system == system
+
+
+def tokens(value: str) -> list[Token]:
+    """The comma-separated (OR) tokens of one parameter value."""
+    out = []
+    for part in value.split(","):
+        if not part:
+            continue
+        system, bar, code = part.rpartition("|")
+        out.append(Token(system if bar else None, code))
+    return out
+
+
+def codes_in_system(values: list[str], system: str, name: str, known: Collection[str] | None = None
+                    ) -> list[set[str]]:
+    """Per repeated parameter (AND), the codes (OR) that can match in ``system``.
+
+    A token of another system matches nothing here (an empty set); a code of ``system`` that ``known`` does not
+    hold is a mistake, not a query for nothing, and is refused naming the codes there are.
+    """
+    out = []
+    for value in values:
+        codes = set()
+        for t in tokens(value):
+            if not t.in_system(system):
+                continue
+            if known is not None and t.code not in known:
+                raise RequestRejected([Issue("value", f"search parameter {name}={t.code!r} is not a code this "
+                                             f"server knows; one of: {', '.join(sorted(known))}")])
+            codes.add(t.code)
+        out.append(codes)
+    return out
+
+
+def intersect(per_value: list[set[str]]) -> set[str] | None:
+    """AND of the repeats: the codes all of them allow, or None when the parameter was not given."""
+    if not per_value:
+        return None
+    result = set(per_value[0])
+    for codes in per_value[1:]:
+        result &= codes
+    return result

@@ -12,6 +12,7 @@ from enum import StrEnum
 from typing import Any
 
 from service.domain.catalogue import LOINC_SYSTEM, CatalogueEntry, lookup
+from service.domain.code_mistakes import likely_mistake
 from service.domain.insulin import InsulinCodes
 
 __all__ = ["Kind", "Triage", "triage"]
@@ -29,6 +30,7 @@ class Triage:
     kind: Kind
     entry: CatalogueEntry | None = None
     reason: str = ""
+    suspect: bool = False  # dropped, but it looks like a watched code sent wrong (said in ``reason``)
 
 
 def triage(resource: dict[str, Any], insulin: InsulinCodes) -> Triage:
@@ -45,6 +47,9 @@ def triage(resource: dict[str, Any], insulin: InsulinCodes) -> Triage:
                 entry = lookup(str(coding.get("code")))
                 if entry is not None:
                     return Triage(Kind.OBSERVATION, entry)
+        mistake = likely_mistake(codings)
+        if mistake is not None:
+            return Triage(Kind.IGNORED, reason=f"{mistake}; not stored", suspect=True)
         return Triage(Kind.IGNORED, reason="Observation code is not one lytestream watches; not stored")
     if rtype == "MedicationAdministration":
         concept = resource.get("medicationCodeableConcept")

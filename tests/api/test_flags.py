@@ -194,8 +194,16 @@ def test_flag_read_and_vread(client: TestClient) -> None:
     assert client.get(f"/fhir/Flag/{flag['id']}").json()["status"] == "inactive"
 
 
-def test_flag_search_refuses_unknown_include(client: TestClient) -> None:
+def test_flag_search_ignores_an_unknown_include_with_a_warning(client: TestClient) -> None:
+    # R4 search.html#errors: lenient unless Prefer: handling=strict.
     r = client.get("/fhir/Flag?_include=Flag:subject")
+    assert r.status_code == 200
+    (outcome,) = [e["resource"] for e in r.json()["entry"] if e["search"]["mode"] == "outcome"]
+    assert "Flag:subject" in outcome["issue"][0]["diagnostics"]
+
+
+def test_flag_search_refuses_an_unknown_include_under_strict_handling(client: TestClient) -> None:
+    r = client.get("/fhir/Flag?_include=Flag:subject", headers={"Prefer": "handling=strict"})
     assert r.status_code == 400
 
 

@@ -24,12 +24,16 @@ from service.api.context import AppContext
 from service.auth.scopes import INTERACTIONS
 from service.clock import FixedClock
 from service.config import Settings
+from service.fhir.conformance import CONFORMANCE_TYPES
 from service.main import build_context, create_app
 from tests.api.test_subscriptions import subscription
 from tests.conftest import authorised_client
 from tests.factories import HEADERS, LAB, bundle, insulin, observation
 
-PUBLIC = {("GET", "/fhir/metadata"), ("GET", "/healthz"), ("GET", "/readyz")}
+PUBLIC = {("GET", "/fhir/metadata"), ("GET", "/healthz"), ("GET", "/readyz"),
+          ("GET", "/.well-known/smart-configuration"), ("GET", "/fhir/.well-known/smart-configuration"),
+          # The conformance resources the CapabilityStatement's canonicals name (tests/api/test_conformance.py).
+          *(("GET", f"/fhir/{t}/{{rid}}") for t in CONFORMANCE_TYPES)}
 CLIENT = "walker"  # every token of the walk names one client, so it owns the subscription it walks
 
 

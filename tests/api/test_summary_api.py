@@ -52,10 +52,24 @@ def flag_of(api: TestClient, rule: str) -> str:
     return str(entry["resource"]["id"])
 
 
+def figures(parameters: list[dict[str, Any]]) -> dict[str, Any]:
+    """The Parameters answer read back as the object it carries: parts become nested objects."""
+    out: dict[str, Any] = {}
+    for p in parameters:
+        if "part" in p:
+            out[p["name"]] = figures(p["part"])
+        else:
+            (value,) = [v for k, v in p.items() if k.startswith("value")]
+            out[p["name"]] = value
+    return out
+
+
 def summary(api: TestClient, query: str = DAY) -> dict[str, Any]:
     r = api.get(f"/fhir/Flag/$summary?{query}")
     assert r.status_code == 200, r.text
-    return dict(r.json())
+    body = r.json()
+    assert body["resourceType"] == "Parameters"
+    return figures(body["parameter"])
 
 
 @pytest.fixture
@@ -219,4 +233,4 @@ def test_a_result_later_resulted_is_no_longer_counted_as_not_evaluated(api: Test
     send(api, observation("na", value=None, status="registered", patient="Patient/p1"))
     assert summary(api)["results_not_evaluated"]["by_reason"] == {"status-registered": 1}
     send(api, observation("na", value=138, patient="Patient/p1"))
-    assert summary(api)["results_not_evaluated"] == {"count": 0, "by_reason": {}}
+    assert summary(api)["results_not_evaluated"] == {"count": 0}  # an empty by_reason is left out

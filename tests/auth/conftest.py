@@ -103,7 +103,8 @@ def ticker() -> Ticker:
 
 @pytest.fixture
 def jwt_settings() -> AuthSettings:
-    return AuthSettings(mode="both", issuer=ISSUER, audience=AUDIENCE, jwks_url=JWKS_URL)
+    return AuthSettings(mode="both", issuer=ISSUER, audience=AUDIENCE, jwks_url=JWKS_URL,
+                        token_endpoint="https://auth.hospital.test/realms/clinical/token")
 
 
 @pytest.fixture

@@ -50,6 +50,7 @@ def test_jwt_modes_need_their_settings() -> None:
         AuthSettings(mode="jwt")
     with pytest.raises(ValueError, match="https"):
         AuthSettings(mode="both", issuer=ISSUER, audience="a", jwks_url="http://auth.hospital.test/jwks")
-    local = AuthSettings(mode="jwt", issuer=ISSUER, audience="a", jwks_url="http://localhost:8081/jwks")
+    local = AuthSettings(mode="jwt", issuer=ISSUER, audience="a", jwks_url="http://localhost:8081/jwks",
+                         token_endpoint="http://localhost:8081/token")
     assert local.mode == "jwt"
     assert AuthSettings().algorithms == ("RS256", "ES256")

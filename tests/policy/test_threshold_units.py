@@ -30,6 +30,12 @@ def test_a_threshold_in_mg_dl_equals_a_result_of_the_same_mg_dl_exactly() -> Non
     assert result == pytest.approx(250 / 18.0156, rel=1e-12)
 
 
+def test_a_threshold_in_g_per_litre_is_converted_by_the_same_function_as_results() -> None:
+    # Any UCUM unit of the property works in policy as in results: 2.5 g/L = 250 mg/dL (UCUM prefixes).
+    assert in_canonical_unit(Analyte.GLUCOSE, "2.5 g/L") == pytest.approx(
+        in_canonical_unit(Analyte.GLUCOSE, "250 mg/dL"), rel=1e-14)
+
+
 def test_a_plain_number_is_read_in_the_canonical_unit() -> None:
     assert in_canonical_unit(Analyte.GLUCOSE, 13.9) == 13.9
 
@@ -37,8 +43,9 @@ def test_a_plain_number_is_read_in_the_canonical_unit() -> None:
 def test_a_unit_that_does_not_fit_the_analyte_is_refused_by_name(tmp_path: Path) -> None:
     text = (Path(__file__).parents[2] / "service/policy/default.toml").read_text()
     path = tmp_path / "p.toml"
-    path.write_text(text.replace('starting_glucose_at_least = "250 mg/dL"', 'starting_glucose_at_least = "250 mg/L"'))
-    with pytest.raises(PolicyError, match=r"crisis\.starting_glucose_at_least: .*'mg/L' is not a UCUM unit for glucose"):
+    # mosm/kg is UCUM, but an osmolality, not a glucose concentration.
+    path.write_text(text.replace('starting_glucose_at_least = "250 mg/dL"', 'starting_glucose_at_least = "250 mosm/kg"'))
+    with pytest.raises(PolicyError, match=r"crisis\.starting_glucose_at_least: .*'mosm/kg' is not a UCUM unit for glucose"):
         load_policy(path)
 
 

@@ -6,11 +6,12 @@ import orjson
 from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
+from starlette.datastructures import QueryParams
 
 from service.api.access_audit import audit_patient_access
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
-from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
+from service.api.paging import Page, page_bundle, patient_alias, search_params, sort_param, strict_handling
 from service.api.requester import RequesterDep
 from service.auth.deps import require
 from service.auth.scopes import needed_scope
@@ -18,36 +19,52 @@ from service.db.acks import acknowledge
 from service.db.audit import record_audit
 from service.db.flags import subjects
 from service.db.reads import FlagQuery, patient_key_for, read_references, search_flags
+from service.domain.findings import Rule
 from service.errors import Issue, NotFound, RequestRejected
 from service.fhir.audit_render import AuditFacts, Requester
-from service.fhir.flag_render import FLAG_DETAIL_URL
+from service.fhir.flag_render import FLAG_DETAIL_URL, RULE_SYSTEM
 from service.fhir.render import fhir_instant
-from service.fhir.search import date_bounds
+from service.fhir.search import codes_in_system, date_bounds, intersect, tokens
 
 router = APIRouter()
 
 _PARAMS = {"patient", "patient:identifier", "subject", "date", "_lastUpdated", "status", "code", "priority",
-           "_count", "_offset", "_sort", "_include"}
+           "detail", "_sort", "_include"}
+FLAG_STATUS = "http://hl7.org/fhir/flag-status"
+FLAG_STATUSES = ("active", "inactive", "entered-in-error")  # FHIR R4 ValueSet flag-status
+FLAG_PRIORITY = "http://hl7.org/fhir/flag-priority-code"
+FLAG_PRIORITIES = ("PN", "PL", "PM", "PH")  # FHIR R4 ValueSet flag-priority (PN, no alarm, is never raised here)
 _PRIORITY_CODES = {"PH": "high", "PM": "medium", "PL": "low"}
 INCLUDE_EVIDENCE = "Flag:detail"  # our name for "the result versions each Flag rests on"
 
 
 @router.get("/fhir/Flag", dependencies=[Depends(require("Flag", "s"))])
 async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    params = request.query_params
-    check_params(params, _PARAMS)
+    params, ignored = search_params(request.query_params, request.headers, _PARAMS)
     page = Page(params, ctx.settings)
     sort = sort_param(params, "-_lastUpdated")
-    includes = params.getlist("_include")
-    if any(i != INCLUDE_EVIDENCE for i in includes):
-        raise RequestRejected([Issue("not-supported", f"_include supports {INCLUDE_EVIDENCE} only")])
+    includes = [i for i in params.getlist("_include") if i == INCLUDE_EVIDENCE]
+    other = sorted(set(params.getlist("_include")) - {INCLUDE_EVIDENCE})
+    if other:
+        # An include we cannot do is an unsupported parameter value: lenient unless asked to be strict.
+        issue = Issue("not-supported", f"_include={', '.join(other)} is not supported and was ignored; "
+                      f"_include supports {INCLUDE_EVIDENCE} only", severity="warning")
+        if strict_handling(request.headers):
+            raise RequestRejected([Issue(issue.code, issue.message)])
+        ignored.append(issue)
+        params = QueryParams([(k, v) for k, v in params.multi_items() if not (k == "_include" and v in other)])
     low, high = date_bounds(params.getlist("date"))
     updated_low, updated_high = date_bounds(params.getlist("_lastUpdated"), "_lastUpdated")
-    priorities = [_PRIORITY_CODES.get(p, p) for p in split_tokens(params, "priority")]
+    statuses = intersect(codes_in_system(params.getlist("status"), FLAG_STATUS, "status", FLAG_STATUSES))
+    rules = intersect(codes_in_system(params.getlist("code"), RULE_SYSTEM, "code", [r.value for r in Rule]))
+    priority_codes = intersect(codes_in_system(params.getlist("priority"), FLAG_PRIORITY, "priority",
+                                               FLAG_PRIORITIES))
+    priorities = None if priority_codes is None else [_PRIORITY_CODES[p] for p in priority_codes
+                                                      if p in _PRIORITY_CODES]
+    details = intersect([{t.code for t in tokens(v)} for v in params.getlist("detail")])
     alias = patient_alias(params)
-    q = FlagQuery(statuses=split_tokens(params, "status"), rules=split_tokens(params, "code"),
-                  priorities=priorities, date_from=low, date_to=high, updated_from=updated_low,
-                  updated_to=updated_high, sort=sort, count=page.count, offset=page.offset)
+    q = FlagQuery(details=_listed(details), statuses=_listed(statuses), rules=_listed(rules), priorities=priorities,
+                  date_from=low, date_to=high, updated_from=updated_low, updated_to=updated_high, sort=sort, count=page.count, offset=page.offset)
 
     def run() -> tuple[list[bytes], int, list[bytes], list[Issue]]:
         with ctx.db.session() as session:
@@ -67,7 +84,11 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
     rows, total, included, withheld = await run_in_threadpool(run)
     return fhir_response(page_bundle(rtype="Flag", params=params, page=page, rows=rows, total=total,
                                      settings=ctx.settings, now=ctx.clock.now(), included=included,
-                                     outcome=withheld))
+                                     outcome=[*ignored, *withheld]))
+
+
+def _listed(codes: set[str] | None) -> list[str] | None:
+    return None if codes is None else sorted(codes)
 
 
 def _readable_evidence(refs: list[str], who: Requester) -> tuple[list[str], list[Issue]]:

@@ -10,21 +10,27 @@ from fastapi.responses import Response
 from service.api.access_audit import audit_patient_access
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
-from service.api.paging import Page, check_params, page_bundle, patient_alias, sort_param, split_tokens
+from service.api.paging import Page, page_bundle, patient_alias, search_params, sort_param
 from service.api.requester import RequesterDep
 from service.auth.deps import require
 from service.auth.failures import forbidden
 from service.auth.scopes import needed_scope
 from service.db.reads import ObservationQuery, history, patient_key_for, read_version, search_observations
+from service.domain.catalogue import LOINC_SYSTEM
 from service.errors import Issue, NotFound, RequestRejected
 from service.fhir.audit_render import Requester
 from service.fhir.render import fhir_instant, status_line
-from service.fhir.search import date_bounds
+from service.fhir.search import codes_in_system, date_bounds, intersect, tokens
 
 router = APIRouter()
 
 _READABLE = ("Observation", "MedicationAdministration", "Flag")
-_OBS_PARAMS = {"patient", "patient:identifier", "subject", "code", "date", "_count", "_offset", "_sort"}
+_OBS_PARAMS = {"patient", "patient:identifier", "subject", "code", "date", "identifier", "_id", "_lastUpdated",
+               "status", "_sort"}
+OBSERVATION_STATUS = "http://hl7.org/fhir/observation-status"
+# FHIR R4 ValueSet observation-status (http://hl7.org/fhir/R4/valueset-observation-status.html).
+OBSERVATION_STATUSES = ("registered", "preliminary", "final", "amended", "corrected", "cancelled",
+                        "entered-in-error", "unknown")
 
 
 @router.get("/fhir/{rtype}/{rid}")
@@ -76,12 +82,17 @@ def instance_history(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -
 
 @router.get("/fhir/Observation", dependencies=[Depends(require("Observation", "s"))])
 async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    params = request.query_params
-    check_params(params, _OBS_PARAMS)
+    params, ignored = search_params(request.query_params, request.headers, _OBS_PARAMS)
     page = Page(params, ctx.settings)
     sort = sort_param(params, "-date")
     low, high = date_bounds(params.getlist("date"))
-    codes = split_tokens(params, "code")
+    updated_low, updated_high = date_bounds(params.getlist("_lastUpdated"), "_lastUpdated")
+    # search.html#token: only LOINC codes are held, so a code of another system matches nothing.
+    codes = intersect(codes_in_system(params.getlist("code"), LOINC_SYSTEM, "code"))
+    statuses = intersect(codes_in_system(params.getlist("status"), OBSERVATION_STATUS, "status",
+                                         OBSERVATION_STATUSES))
+    ids = intersect([{t.code for t in tokens(v)} for v in params.getlist("_id")])
+    identifiers = [[(t.system, t.code) for t in tokens(v)] for v in params.getlist("identifier")]
     alias = patient_alias(params)
 
     def run() -> tuple[list[bytes], int]:
@@ -89,15 +100,21 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
             key = patient_key_for(session=session, alias=alias) if alias else None
             if alias and key is None:
                 return [], 0
-            q = ObservationQuery(patient_key=key, codes=codes, date_from=low, date_to=high, sort=sort,
-                                 count=page.count, offset=page.offset)
+            q = ObservationQuery(patient_key=key, codes=_listed(codes), ids=_listed(ids),
+                                 identifiers=identifiers, statuses=_listed(statuses), date_from=low, date_to=high,
+                                 updated_from=updated_low, updated_to=updated_high, sort=sort, count=page.count,
+                                 offset=page.offset)
             return search_observations(session=session, q=q)
 
     rows, total = await run_in_threadpool(run)
     await run_in_threadpool(audit_patient_access, ctx, who, rows, subtype="search-type",
                             query=f"GET Observation?{request.url.query}")
     return fhir_response(page_bundle(rtype="Observation", params=params, page=page, rows=rows, total=total,
-                                     settings=ctx.settings, now=ctx.clock.now()))
+                                     settings=ctx.settings, now=ctx.clock.now(), outcome=ignored))
+
+
+def _listed(codes: set[str] | None) -> list[str] | None:
+    return None if codes is None else sorted(codes)
 
 
 def _allowed(rtype: str, interaction: str, ctx: ContextDep, who: Requester) -> None:

@@ -17,6 +17,7 @@ from fastapi.responses import Response
 from sqlalchemy import select, update
 from sqlmodel import Session
 
+from service.api.access_audit import audit_patient_access
 from service.api.context import AppContext, ContextDep
 from service.api.fhir_io import fhir_response, read_json
 from service.api.requester import RequesterDep
@@ -26,9 +27,12 @@ from service.auth.principal import Principal
 from service.auth.scopes import ADMIN_SCOPE, needed_scope
 from service.db.audit import record_audit
 from service.db.subscriptions import (
+    DELETED,
+    WITHHELD,
     create_subscription,
     events_between,
     flag_version,
+    keep_withheld_headers,
     queue_handshake,
     served_subscription,
 )
@@ -62,10 +66,16 @@ def _audit(ctx: AppContext, session: Session, who: Requester, subtype: str, sid:
 
 
 def _row(session: Session, sid: str) -> Any:
+    """The subscription's row, deleted or not; 404 when never held."""
     row = session.execute(select(_S).where(_S.c.id == sid)).first()
     if row is None:
         raise NotFound(f"Subscription/{sid} is not held here")
     return row
+
+
+def _gone(sid: str) -> RequestRejected:
+    # http.html#read: a deleted resource reads as 410 Gone.
+    return RequestRejected([Issue("deleted", f"Subscription/{sid} was deleted", status=410)])
 
 
 def _caller(who: Requester) -> Principal:
@@ -76,11 +86,14 @@ def _caller(who: Requester) -> Principal:
     return principal
 
 
-def _owned_row(session: Session, sid: str, who: Requester) -> Any:
-    """The subscription, if the caller made it or holds the admin scope; 403 otherwise (404 if not held)."""
+def _owned_row(session: Session, sid: str, who: Requester, *, deleted_too: bool = False) -> Any:
+    """The subscription, if the caller made it or holds the admin scope; 403 otherwise (404 if not held, 410 if
+    deleted unless ``deleted_too``)."""
     row = _row(session, sid)
     if not _caller(who).admin and (row.owner_client is None or row.owner_client != who.client):
         raise not_owner(f"Subscription/{sid}", ADMIN_SCOPE)
+    if row.status == DELETED and not deleted_too:
+        raise _gone(sid)
     return row
 
 
@@ -111,13 +124,13 @@ async def create(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
 @router.get("/fhir/Subscription", dependencies=[Depends(require("Subscription", "s"))])
 def search(ctx: ContextDep, who: RequesterDep) -> Response:
     """The caller's own subscriptions (every client's, for the admin scope)."""
-    query = select(_S).order_by(_S.c.created_at, _S.c.id)
+    query = select(_S).where(_S.c.status != DELETED).order_by(_S.c.created_at, _S.c.id)
     if not _caller(who).admin:
         query = query.where(_S.c.owner_client == who.client)
     with ctx.db.session() as session:
         rows = session.execute(query).all()
     return fhir_response(searchset([served_subscription(r) for r in rows], base=ctx.settings.base_url,
-                                   self_url=f"{ctx.settings.base_url}/Subscription", next_url=None,
+                                   links={"self": f"{ctx.settings.base_url}/Subscription"},
                                    total=len(rows), now=ctx.clock.now()))
 
 
@@ -140,6 +153,12 @@ async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep
         now = ctx.clock.now()
         with ctx.db.session(write=True) as session:
             row = _owned_row(session, sid, who)
+            missing = keep_withheld_headers(body, orjson.loads(row.resource))
+            if missing:
+                raise RequestRejected([Issue("value", f"header {name} carries the masked value {WITHHELD!r} but "
+                                             "no header of that name is held to keep; send its value",
+                                             (f"Subscription.channel.header[{i}]",), status=422)
+                                       for i, name in missing])
             wanted = body.get("status")
             status = row.status
             if wanted == "off":
@@ -163,13 +182,19 @@ async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep
 
 @router.delete("/fhir/Subscription/{sid}", dependencies=[Depends(require("Subscription", "d"))])
 def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
-    """Stops it (status ``off``); its events stay for the audit trail."""
+    """Deletes it (http.html#delete): nothing more is sent, reads answer 410 Gone, search leaves it out; its
+    events stay for the audit trail. Deleting one never held, or already deleted, succeeds too."""
     now = ctx.clock.now()
     with ctx.db.session(write=True) as session:
-        row = _owned_row(session, sid, who)
-        session.execute(update(_S).where(_S.c.id == sid).values(status="off", version_id=row.version_id + 1,
-                                                                last_updated=now))
-        _audit(ctx, session, who, "delete", sid, row.version_id + 1)
+        try:
+            row = _owned_row(session, sid, who, deleted_too=True)
+        except NotFound:
+            return fhir_response(None, 204)
+        if row.status != DELETED:
+            session.execute(update(_S).where(_S.c.id == sid).values(
+                status=DELETED, version_id=row.version_id + 1, last_updated=now, lease_owner=None,
+                lease_until=None))
+            _audit(ctx, session, who, "delete", sid, row.version_id + 1)
     return fhir_response(None, 204)
 
 
@@ -200,6 +225,10 @@ def events(sid: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Re
             out.append(NotificationEvent(number=e.number, timestamp=e.created_at, focus=f"Flag/{e.focus_id}",
                                          interaction=e.interaction or "update", version_id=str(e.focus_version),
                                          last_updated=e.created_at, resource=resource))
+    if shown == "full-resource":
+        audit_patient_access(ctx, who, [orjson.dumps(e.resource) for e in out if e.resource is not None],
+                             subtype="operation", operation="$events",
+                             query=f"GET Subscription/{sid}/$events?{request.url.query}")
     return fhir_response(events_response(state, out, now=ctx.clock.now(), content=content))
 
 

@@ -2,19 +2,21 @@
 
 It must be registered before the generic ``/fhir/{rtype}/{rid}`` read, or ``$summary`` is read as a Flag id.
 It needs Flag search and AuditEvent search: its figures are drawn from both. The answer holds counts and
-times only — no patient keys, names or result values — and the access itself is audited.
+times only — no patient keys, names or result values — and the access itself is audited. It answers a FHIR
+Parameters resource: one parameter per figure, parts for the groups (OperationDefinition/Flag-summary).
 """
 
 from __future__ import annotations
 
 from datetime import datetime, timedelta
+from typing import Any
 
-import orjson
 from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.context import ContextDep
+from service.api.fhir_io import fhir_response
 from service.api.paging import check_params
 from service.api.requester import RequesterDep
 from service.auth.deps import require
@@ -22,6 +24,7 @@ from service.db.audit import record_audit
 from service.db.summary import load_facts
 from service.errors import Issue, RequestRejected
 from service.fhir.audit_render import AuditFacts
+from service.fhir.parameters import as_parameters
 from service.summary import parse_instant, summarise, summary_json
 
 router = APIRouter()
@@ -38,7 +41,7 @@ async def flag_summary(request: Request, ctx: ContextDep, who: RequesterDep) -> 
     start, end = _range(params.get("start"), params.get("end"))
     now = ctx.clock.now()
 
-    def run() -> bytes:
+    def run() -> dict[str, Any]:
         with ctx.db.session() as session:
             stored = load_facts(session=session, start=start, end=end, policy=ctx.policy)
             summary = summarise(stored, start=start, end=end)
@@ -47,9 +50,9 @@ async def flag_summary(request: Request, ctx: ContextDep, who: RequesterDep) -> 
                                query=f"GET Flag/$summary?{request.url.query}",
                                details={"flags": str(summary.flags_raised)})
             record_audit(session=session, events=[(facts, None)], base_url=ctx.settings.base_url)
-        return orjson.dumps(summary_json(summary))
+        return as_parameters(summary_json(summary), typed={"start": "valueInstant", "end": "valueInstant"})
 
-    return Response(content=await run_in_threadpool(run), media_type="application/json")
+    return fhir_response(await run_in_threadpool(run))
 
 
 def _range(start: str | None, end: str | None) -> tuple[datetime, datetime]:
