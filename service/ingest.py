@@ -266,7 +266,7 @@ class Ingestor:
         if_none_exist = _check_request(e, rtype)
         found = triage(resource, self.insulin)
         if found.kind is Kind.IGNORED:
-            return _Prepared(Kind.IGNORED, [], reason=found.reason, suspect=found.suspect)
+            return _Prepared(Kind.IGNORED, [], reason=found.reason, suspect=found.suspect, root=e.root)
         # One cheap serialisation tells whether the two tree walks below can find anything at all.
         blob = orjson.dumps(resource)
         warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone,
@@ -369,7 +369,7 @@ class Ingestor:
             elif p.suspect:
                 # Dropped like any unwatched code, but said as a warning and counted: a feed sending
                 # sodium under a typo would otherwise lose every sodium in silence.
-                results.append(EntryResult(200, issues=[Issue("code-invalid", p.reason, ("Observation.code",),
+                results.append(EntryResult(200, issues=[Issue("code-invalid", p.reason, (f"{p.root}.code",),
                                                               severity="warning")], suspect_drop=True))
             else:
                 results.append(EntryResult(200, issues=[Issue("informational", p.reason, severity="information")]))

@@ -191,3 +191,12 @@ def test_two_values_name_each_variant_sent_and_each_selects_one_node(client: Tes
     expressions = [x for x, _ in error_expressions(r)]
     assert expressions == ["Observation.valueQuantity", "Observation.valueString"]
     assert [evaluate(sent, x, model=R4) for x in expressions] == [[sent["valueQuantity"]], ["high"]]
+
+
+def test_a_suspect_code_warning_in_a_batch_names_that_entry_code(client: TestClient) -> None:
+    # 2951-3 fails the LOINC mod-10 check digit (2951-2 is serum sodium; LOINC Users' Guide).
+    sent = bundle("batch", observation("fp-ok"), observation("fp-typo", code="2951-3"))
+    r = client.post("/fhir", content=dumps(sent), headers=HEADERS)
+    (warning,) = [i for i in r.json()["entry"][1]["response"]["outcome"]["issue"] if i["severity"] == "warning"]
+    assert warning["expression"] == ["Bundle.entry[1].resource.code"]
+    assert evaluate(sent, warning["expression"][0], model=R4) == [sent["entry"][1]["resource"]["code"]]
