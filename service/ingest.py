@@ -266,7 +266,7 @@ class Ingestor:
         if_none_exist = _check_request(e, rtype)
         found = triage(resource, self.insulin)
         if found.kind is Kind.IGNORED:
-            return _Prepared(Kind.IGNORED, [], reason=found.reason, suspect=found.suspect)
+            return _Prepared(Kind.IGNORED, [], reason=found.reason, suspect=found.suspect, root=e.root)
         # One cheap serialisation tells whether the two tree walks below can find anything at all.
         blob = orjson.dumps(resource)
         warnings = (fix_offsetless(resource, e.root, self.settings.lab_timezone,
@@ -284,6 +284,15 @@ class Ingestor:
         if found.kind is Kind.PATIENT:
             aliases = patient_entry_aliases(normalise_patient(resource, e.root), e.url)
             return _Prepared(Kind.PATIENT, warnings, aliases=aliases)
+        if found.kind is Kind.OBSERVATION and found.entry is None:
+            # Triage could not read Observation.code and the models found it well formed: a code of text
+            # alone (valid, but not one we watch) or an empty one (ele-1: an element has a value or children).
+            code = resource.get("code")
+            if not code:
+                raise Invalid([Issue("required", "Observation.code must carry a coding or text (ele-1)",
+                                     (f"{e.root}.code",))])
+            return _Prepared(Kind.IGNORED, [], reason="Observation code carries no coding lytestream watches; "
+                             "not stored")
         if found.kind is Kind.OBSERVATION:
             assert found.entry is not None
             obs = normalise_observation(resource, found.entry, e.root)
@@ -360,7 +369,7 @@ class Ingestor:
             elif p.suspect:
                 # Dropped like any unwatched code, but said as a warning and counted: a feed sending
                 # sodium under a typo would otherwise lose every sodium in silence.
-                results.append(EntryResult(200, issues=[Issue("code-invalid", p.reason, ("Observation.code",),
+                results.append(EntryResult(200, issues=[Issue("code-invalid", p.reason, (f"{p.root}.code",),
                                                               severity="warning")], suspect_drop=True))
             else:
                 results.append(EntryResult(200, issues=[Issue("informational", p.reason, severity="information")]))

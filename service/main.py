@@ -19,6 +19,7 @@ from starlette.exceptions import HTTPException
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
 from service.api.intake import BodyAborted, BodyIntake
+from service.api.last_resort import LastResort, internal_error
 from service.api.refusals import RefusalAudit, RefusalLimiter
 from service.api.routes import audit, conformance, flags, ingest, meta, read, subscriptions, summary
 from service.api.wire import FhirWire
@@ -142,20 +143,12 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
 
     @app.exception_handler(DBAPIError)
     async def _database(_: Request, exc: DBAPIError) -> Response:
-        # Handled here, not re-raised to the server (as the catch-all below is): its text would carry
+        # Handled here, not re-raised to the server (as Starlette's catch-all would): its text would carry
         # the statement's patient data. The log gets the frames and the SQLSTATE only.
         log.error("database error %s\n%s", describe(exc), safe_traceback(exc))
-        return _internal_error()
+        return internal_error()
 
-    @app.exception_handler(Exception)
-    async def _crash(_: Request, exc: Exception) -> Response:
-        # No PHI: the type and the frames, never the message (service.logsafe).
-        log.error("unhandled %s\n%s", describe(exc), safe_traceback(exc))
-        return _internal_error()
-
+    # Outermost of our middleware: what nothing above handled answers a 500 OperationOutcome there, and is
+    # not raised on to the server (which would drop the kept-alive connection).
+    app.add_middleware(LastResort)
     return app
-
-
-def _internal_error() -> Response:
-    return outcome_response([Issue("exception", "internal error; nothing from this request was stored",
-                                   severity="fatal")], 500)

@@ -50,6 +50,23 @@ def test_bad_lines_are_reported_and_good_ones_land(client: TestClient, tmp_path:
     assert client.get("/fhir/Observation").json()["total"] == 2
 
 
+def test_the_demo_ward_replays_without_a_refusal_when_its_day_is_over(context, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    # The feed holds one infusion twice (in progress, then completed): when a transaction falls back to a
+    # batch, that pair must not fail the batch (it answered 500 once, and every resend the same).
+    from datetime import UTC, datetime
+
+    from tests.conftest import authorised_client
+
+    context.clock.set(datetime(2026, 3, 3, 1, 0, tzinfo=UTC))  # after the feed's last time, 2026-03-02T23:55Z
+    feed = Path(__file__).resolve().parents[1] / "fixtures" / "demo" / "ward.ndjson"
+    with authorised_client(context) as client:
+        summary = replay_file(feed, "http://testserver/fhir", bundle_size=100, console=Console(file=io.StringIO()),
+                              client=client)
+    assert summary.refused == 0, summary.errors[:3]
+    assert summary.stored + summary.recorded + summary.dropped == summary.total
+    assert summary.stored > 0
+
+
 def test_dropped_entries_are_counted_as_dropped_not_accepted_and_suspect_codes_are_named(
     client: TestClient, tmp_path: Path
 ) -> None:

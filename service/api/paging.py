@@ -125,6 +125,7 @@ def page_bundle(*, rtype: str, params: QueryParams, page: Page, rows: Sequence[b
 def _int(value: str | None, default: int, name: str) -> int:
     if value is None:
         return default
-    if not value.lstrip("-").isdigit():
-        raise RequestRejected([Issue("value", f"{name} must be a whole number, not {value!r}")])
+    # Bounded as the database's 64-bit integers are: a larger one would overflow the query, not page.
+    if not value.lstrip("-").isdigit() or len(value.lstrip("-")) > 18:
+        raise RequestRejected([Issue("value", f"{name} must be a whole number below 10^18, not {value!r}")])
     return int(value)

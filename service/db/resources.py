@@ -151,6 +151,11 @@ def apply_versions(
                     "version_id": version,
                     "last_updated": now,
                     "content_hash": p.content_hash,
+                    # What the next decision on this identifier in the same request reads (a batch may carry
+                    # one resource twice); MedicationAdministration rows have no issued column.
+                    "status": p.status,
+                    "issued": p.issued,
+                    "patient_key": p.row["patient_key"],
                     "new": cur["new"] if cur else True,
                     "dirty": True,
                 }

@@ -20,13 +20,26 @@ from zoneinfo import ZoneInfo
 
 from service.errors import Issue
 
-__all__ = ["OFFSETLESS_JSON", "OnTransition", "fix_offsetless", "local_reading"]
+__all__ = ["OFFSETLESS_JSON", "OnTransition", "fix_offsetless", "local_reading", "without_leap_second"]
 
 OnTransition = Literal["refuse", "accept"]
 
 _NO_OFFSET = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}(:\d{2}(\.\d+)?)?$")
 # The same, as a JSON string anywhere in serialised bytes: when it finds nothing, nothing needs walking.
 OFFSETLESS_JSON = re.compile(rb'"\d{4}-\d{2}-\d{2}T\d{2}:\d{2}(:\d{2}(\.\d+)?)?"')
+
+
+# FHIR R4 datatypes (instant, dateTime: seconds "[0-5][0-9]|60") and RFC 3339 section 5.7 allow a leap
+# second, 23:59:60; Python's datetime has no second 60. It is read as 23:59:59.999999, the last instant
+# Python can name before the next second: it stays in its own minute and day, after every earlier time
+# and before the next second, so ordering and windows treat it as the lab meant. The text is kept as sent.
+_LEAP_SECOND = re.compile(r"^(\d{4}-\d{2}-\d{2}T\d{2}:\d{2}):60(?:\.\d+)?(.*)$")
+
+
+def without_leap_second(value: str) -> str:
+    """``value`` with a leap second (``:60``) read as ``:59.999999``; any other value unchanged."""
+    m = _LEAP_SECOND.match(value)
+    return f"{m[1]}:59.999999{m[2]}" if m else value
 
 
 def fix_offsetless(resource: dict[str, Any], root: str, zone: str | None, *,
@@ -88,10 +101,10 @@ def _handle(value: str, path: str, tz: ZoneInfo | None, on_transition: OnTransit
         ), None
     text = value if value.count(":") == 2 else value + ":00"
     try:
-        wall = datetime.fromisoformat(text)
-    except ValueError:
+        wall = datetime.fromisoformat(without_leap_second(text))
+        local, instants = local_reading(wall, tz)
+    except (ValueError, OverflowError):
         return Issue("value", f"{value!r} is not a valid date-time", (path,)), None
-    local, instants = local_reading(wall, tz)
     zone = tz.key
     if instants == "single":
         return _read_as(value, zone, local.isoformat(), path), local.isoformat()

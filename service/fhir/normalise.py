@@ -19,6 +19,7 @@ from service.domain.insulin import InsulinCodes
 from service.domain.units import UCUM_SYSTEM, UnitNotAccepted, to_canonical
 from service.domain.values import ResultStatus
 from service.errors import Issue
+from service.fhir.datetimes import without_leap_second
 
 __all__ = [
     "IncomingInsulin",
@@ -108,9 +109,36 @@ def content_hash(resource: dict[str, Any]) -> str:
     return hashlib.sha256(orjson.dumps(body, option=orjson.OPT_SORT_KEYS)).hexdigest()
 
 
+# Times lytestream can compute with: windows and look-backs of years either side stay within datetime's
+# range (years 1 to 9999). FHIR allows years 0001 and 9999 with any offset, which may not even have a UTC
+# reading (0001-01-01T00:00:00+14:00 is in year 0); no lab result is dated there.
+EARLIEST = datetime(1900, 1, 1, tzinfo=UTC)
+LATEST = datetime(9000, 1, 1, tzinfo=UTC)
+
+
 def parse_datetime(value: str) -> datetime:
-    """A FHIR dateTime/instant with offset → aware UTC. Partial dates are the caller's to refuse."""
-    return datetime.fromisoformat(value.replace("Z", "+00:00")).astimezone(UTC)
+    """A FHIR dateTime/instant with offset → aware UTC. Partial dates are the caller's to refuse.
+
+    ValueError when the text is not a date-time or its instant is outside EARLIEST..LATEST.
+    """
+    try:
+        when = datetime.fromisoformat(without_leap_second(value).replace("Z", "+00:00")).astimezone(UTC)
+    except OverflowError as exc:
+        raise ValueError(f"{value!r} has no UTC reading within years 1 to 9999") from exc
+    if not EARLIEST <= when < LATEST:
+        raise ValueError(f"{value!r} is outside the times lytestream reads ({EARLIEST.year} to {LATEST.year})")
+    return when
+
+
+def _read_time(value: Any, path: str, issues: list[Issue]) -> datetime | None:
+    """``value`` read as a date-time with a time of day, or None; an unreadable one is an Issue at ``path``."""
+    if not _has_time(value):
+        return None
+    try:
+        return parse_datetime(value)
+    except ValueError as exc:
+        issues.append(Issue("value", str(exc), (path,), status=422))
+        return None
 
 
 def _has_time(value: Any) -> bool:
@@ -167,8 +195,9 @@ def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root:
         issues += exc.issues
         subject = {}
 
-    effective, effective_path = _observation_time(resource, root)
-    if effective is None:
+    unreadable = len(issues)
+    effective, effective_path = _observation_time(resource, root, issues)
+    if effective is None and len(issues) == unreadable:
         issues.append(
             Issue(
                 "required",
@@ -183,7 +212,7 @@ def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root:
         value, comparator, unit_issue = _quantity(quantity, entry, f"{root}.valueQuantity")
         if unit_issue:
             issues.append(unit_issue)
-    issued = resource.get("issued")
+    issued = _read_time(resource.get("issued"), f"{root}.issued", issues)
     if issues:
         raise Invalid(issues)
     assert effective is not None
@@ -193,7 +222,7 @@ def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root:
         entry=entry,
         status=str(status),
         effective=effective,
-        issued=parse_datetime(issued) if issued else None,
+        issued=issued,
         value=value,
         comparator=comparator,
         encounter=(resource.get("encounter") or {}).get("reference"),
@@ -239,19 +268,22 @@ def _mentions_haemolysis(text: Any) -> bool:
     return isinstance(text, str) and any(word in text.lower() for word in _HAEMOLYSIS_WORDS)
 
 
-def _observation_time(resource: dict[str, Any], root: str) -> tuple[datetime | None, str]:
+def _observation_time(resource: dict[str, Any], root: str, issues: list[Issue]) -> tuple[datetime | None, str]:
+    """The collection time and the element it was read from (FHIRPath ``effective`` when there is none)."""
     for key in ("effectiveDateTime", "effectiveInstant"):
         if key in resource:
-            value = resource[key]
-            return (parse_datetime(value) if _has_time(value) else None), f"{root}.{key}"
+            return _read_time(resource[key], f"{root}.{key}", issues), f"{root}.{key}"
     period = resource.get("effectivePeriod")
     if period is not None:
         # Collection time is the start of the period; an end alone is the best we have.
         for key in ("start", "end"):
             if _has_time(period.get(key)):
-                return parse_datetime(period[key]), f"{root}.effectivePeriod.{key}"
-        return None, f"{root}.effectivePeriod"
-    return None, f"{root}.effective[x]"
+                path = f"{root}.effectivePeriod.{key}"
+                return _read_time(period[key], path, issues), path
+        # Neither has a time of day: name the one sent (start first), or the Period if it is empty.
+        sent = next((k for k in ("start", "end") if k in period), None)
+        return None, f"{root}.effectivePeriod.{sent}" if sent else f"{root}.effectivePeriod"
+    return None, f"{root}.effective"
 
 
 def _quantity(
@@ -325,18 +357,23 @@ def normalise_insulin(
     subject = resource.get("subject") or {}
     start: datetime | None = None
     end: datetime | None = None
-    if _has_time(resource.get("effectiveDateTime")):
-        start = end = parse_datetime(resource["effectiveDateTime"])
+    unreadable = len(issues)
+    if "effectiveDateTime" in resource:
+        where = f"{root}.effectiveDateTime"
+        start = end = _read_time(resource["effectiveDateTime"], where, issues)
     elif isinstance(resource.get("effectivePeriod"), dict):
         period = resource["effectivePeriod"]
-        start = parse_datetime(period["start"]) if _has_time(period.get("start")) else None
-        end = parse_datetime(period["end"]) if _has_time(period.get("end")) else None
-    if start is None:
+        where = f"{root}.effectivePeriod.start" if "start" in period else f"{root}.effectivePeriod"
+        start = _read_time(period.get("start"), f"{root}.effectivePeriod.start", issues)
+        end = _read_time(period.get("end"), f"{root}.effectivePeriod.end", issues)
+    else:
+        where = f"{root}.effective"
+    if start is None and len(issues) == unreadable:
         issues.append(
             Issue(
                 "required",
                 "effectiveDateTime or effectivePeriod.start with a time of day is required",
-                (f"{root}.effective[x]",),
+                (where,),
                 status=422,
             )
         )
@@ -375,12 +412,17 @@ def _route(dosage: dict[str, Any]) -> str | None:
 
 
 def normalise_patient(resource: dict[str, Any], root: str) -> IncomingPatient:
+    """The names a Patient gives itself. Also read before validation (to resolve a Bundle's urn:uuid
+    references), so whatever is not shaped as FHIR says is left out here and refused by validation."""
+    found = resource.get("identifier")
     identifiers = tuple(
-        (str(i["system"]), str(i["value"]))
-        for i in resource.get("identifier") or ()
-        if i.get("system") and i.get("value")
+        (i["system"], i["value"])
+        for i in (found if isinstance(found, list) else ())
+        if isinstance(i, dict) and isinstance(i.get("system"), str) and isinstance(i.get("value"), str)
+        and i["system"] and i["value"]
     )
-    return IncomingPatient(id=resource.get("id"), identifiers=identifiers, resource=resource)
+    rid = resource.get("id")
+    return IncomingPatient(id=rid if isinstance(rid, str) else None, identifiers=identifiers, resource=resource)
 
 
 def loinc_codes(resource: dict[str, Any]) -> list[str]:

@@ -43,7 +43,7 @@ def date_bounds(values: list[str], name: str = "date") -> tuple[datetime | None,
             if not m:
                 raise ValueError("not a FHIR date")
             start, end = _range(m.group(2))
-        except ValueError as exc:
+        except (ValueError, OverflowError) as exc:  # OverflowError: years 1 and 9999 with an offset
             raise RequestRejected([Issue("value", f"search parameter {name}={value!r}: {exc}; use e.g. "
                                          "ge2024-03-01 or lt2024-03-01T10:00:00Z")]) from exc
         prefix = m.group(1) or "eq"

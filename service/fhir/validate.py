@@ -14,6 +14,8 @@ from fhir.resources.R4B import get_fhir_model_class
 from pydantic import ValidationError
 
 from service.errors import Issue
+from service.fhir.fhirpath import step
+from service.fhir.wire_types import wire_type_issues
 
 __all__ = ["full_validation", "validate_resource"]
 
@@ -76,32 +78,70 @@ def _run(model: Any, resource: dict[str, Any], root: str) -> list[Issue]:
     try:
         model.model_validate(resource)
     except ValidationError as exc:
-        return [_issue(err, root) for err in exc.errors(include_url=False)]
+        return [_issue(err, root, resource) for err in exc.errors(include_url=False)]
     except RecursionError:
         # Elements nested a hundred deep (extensions in extensions) exhaust the models' stack.
         return [Issue("structure", "elements are nested too deeply to validate", (root,))]
-    return []
+    except (KeyError, TypeError, AttributeError, ValueError):
+        # The models fail outright on some inputs (a contained resource of an unknown type raises KeyError).
+        return _unreadable_contained(resource, root) or [
+            Issue("structure", "the R4B models cannot read this resource", (root,))]
+    # What the models coerce rather than refuse ("140" for a decimal) or leave unchecked (comparator).
+    return wire_type_issues(resource, model, root)
 
 
-def _issue(err: Any, root: str) -> Issue:
-    path = root
-    for part in err.get("loc", ()):
-        if isinstance(part, int):
-            path += f"[{part}]"
-        elif part == "resource_type":
-            path += ".resourceType"
-        else:
-            path += f".{part}"
+def _unreadable_contained(resource: dict[str, Any], root: str) -> list[Issue]:
+    contained = resource.get("contained")
+    issues: list[Issue] = []
+    for i, item in enumerate(contained if isinstance(contained, list) else ()):
+        rtype = item.get("resourceType") if isinstance(item, dict) else None
+        try:
+            _model(str(rtype))
+        except (KeyError, ValueError):
+            issues.append(Issue("not-supported", f"unknown resourceType {rtype!r}",
+                                (f"{root}.contained[{i}].resourceType",)))
+    return issues
+
+
+def _issue(err: Any, root: str, resource: dict[str, Any]) -> Issue:
     kind = err.get("type", "")
+    path, node = _located(err.get("loc", ()), root, resource, missing="missing" in kind)
     code = "required" if "missing" in kind else "structure" if kind == "extra_forbidden" else "value"
     message = str(err.get("msg", "invalid")).removeprefix("Value error, ")
     if "but got multiple" in message:
-        # A choice type sent twice: name the element, e.g. value[x], from the listed variants.
+        # A choice type sent twice: name each variant sent (value[x] is not FHIRPath; valueString is).
         names = re.findall(r"'([a-zA-Z]+)'", message)
         stem = os.path.commonprefix(names)
         stem = re.sub(r"[A-Z][a-z]*$", "", stem) if names and len(names) > 1 else stem
-        path = f"{path}.{stem}[x]" if stem else path
-        message = f"only one {stem}[x] may be given" if stem else message
+        sent = [n for n in names if isinstance(node, dict) and node.get(n) is not None]
+        if stem and sent:
+            return Issue(code, f"only one {stem}[x] may be given, not {' and '.join(sent)}",
+                         tuple(step(path, n) for n in sent))
+    if "Expect any of field value from this list" in message:
+        # A required choice sent in none of its variants: FHIRPath names it without [x] (effective).
+        stem = re.sub(r"[A-Z][a-z]*$", "", os.path.commonprefix(re.findall(r"'([a-zA-Z]+)'", message)))
+        if stem:
+            return Issue("required", f"{stem}[x] is required", (step(path, stem),))
     if kind == "extra_forbidden":
         message = "element is not part of FHIR R4 for this resource"
     return Issue(code, message, (path,))
+
+
+def _located(loc: Any, root: str, resource: dict[str, Any], *, missing: bool) -> tuple[str, Any]:
+    """The FHIRPath of the element an error's ``loc`` names, and that element's JSON.
+
+    ``loc`` mixes element names with the models' own steps (``root`` of a wrapped value, validator
+    names): only the steps found in the JSON sent are kept, and the last step of a missing element.
+    """
+    path: str = root
+    node: Any = resource
+    parts = list(loc)
+    for n, part in enumerate(parts):
+        name = "resourceType" if part == "resource_type" else part
+        if isinstance(name, int) and isinstance(node, list) and 0 <= name < len(node):
+            path, node = f"{path}[{name}]", node[name]
+        elif isinstance(name, str) and isinstance(node, dict) and name in node:
+            path, node = step(path, name), node[name]
+        elif missing and n == len(parts) - 1 and isinstance(name, str):
+            path, node = step(path, name), None
+    return path, node

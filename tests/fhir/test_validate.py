@@ -20,10 +20,11 @@ def base() -> dict[str, Any]:
     return obs
 
 
-def test_two_value_choices_are_named_as_value_x() -> None:
+def test_two_value_choices_name_each_variant_sent() -> None:
     obs = base() | {"valueString": "high"}
     (issue,) = validate_resource(obs, "Observation")
-    assert issue.expression == ("Observation.value[x]",)
+    assert issue.expression == ("Observation.valueQuantity", "Observation.valueString")
+    assert "value[x]" in issue.message
 
 
 def test_unknown_element_is_a_structure_issue() -> None:

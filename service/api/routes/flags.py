@@ -152,10 +152,16 @@ async def _ack_note(request: Request) -> str | None:
         raise RequestRejected([Issue("structure", f"malformed JSON: {exc}")]) from exc
     if not isinstance(body, dict) or body.get("resourceType") != "Parameters":
         raise RequestRejected([Issue("invalid", "$acknowledge takes a Parameters resource", ("Parameters",))])
-    for i, p in enumerate(body.get("parameter") or []):
+    parameters = body.get("parameter") or []
+    if not isinstance(parameters, list):
+        raise RequestRejected([Issue("structure", "Parameters.parameter must be a list", ("Parameters.parameter",))])
+    for i, p in enumerate(parameters):
+        if not isinstance(p, dict):
+            raise RequestRejected([Issue("structure", "a parameter must be a JSON object",
+                                         (f"Parameters.parameter[{i}]",))])
         if p.get("name") == "note":
             if not isinstance(p.get("valueString"), str):
                 raise RequestRejected([Issue("value", "note must be a valueString",
-                                             (f"Parameters.parameter[{i}]",))])
+                                             (f"Parameters.parameter[{i}].valueString",))])
             return str(p["valueString"])[:2000]
     return None

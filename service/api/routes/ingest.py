@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+from dataclasses import replace
 from typing import Any
 
 from fastapi import APIRouter, Depends, Request
@@ -33,10 +34,15 @@ async def post_bundle(request: Request, ctx: ContextDep, who: RequesterDep, call
     body, raw = await read_json(request, max_bytes=ctx.settings.max_body_bytes)
     entries, kind = _bundle_entries(body, ctx.settings.max_bundle_entries)
     for e in entries:
+        if e.refused is not None:
+            continue  # its envelope is unusable; nothing to authorise
         rtype = e.resource.get("resourceType") if isinstance(e.resource, dict) else None
         issue = entry_allowed(caller, str(rtype or (e.url or "").split("?")[0].split("/")[0]), e.method, url=e.url)
         if issue is not None:
-            e.refused = issue.at(e.root.removesuffix(".resource"))
+            where = e.root.removesuffix(".resource")
+            # A method we do not take is the method's fault, not the entry's: name that element.
+            e.refused = (replace(issue, expression=(f"{where}.request.method",)) if issue.code == "not-supported"
+                         else issue.at(where))
         elif rtype:
             refusal = update_refusal(caller, str(rtype))
             e.update_refused = refusal.at(e.root.removesuffix(".resource")) if refusal else None
@@ -61,26 +67,42 @@ def _bundle_entries(body: Any, max_entries: int) -> tuple[list[EntryRequest], st
     if len(raw_entries) > max_entries:
         raise RequestRejected([Issue("too-costly", f"Bundle has {len(raw_entries)} entries; the limit is "
                                      f"{max_entries}", ("Bundle.entry",), status=413)])
-    entries: list[EntryRequest] = []
-    issues: list[Issue] = []
-    for i, e in enumerate(raw_entries):
-        root = f"Bundle.entry[{i}]"
-        request = e.get("request") if isinstance(e, dict) else None
-        if not isinstance(request, dict) or not request.get("method"):
-            issues.append(Issue("required", "entry.request with method and url is required in a "
-                                f"{kind} (bdl-3)", (f"{root}.request",)))
-            continue
-        entries.append(EntryRequest(
-            root=f"{root}.resource",
-            resource=e.get("resource"),
-            method=str(request.get("method")),
-            url=request.get("url"),
-            if_none_exist=request.get("ifNoneExist"),
-            full_url=e.get("fullUrl"),
-        ))
-    if issues:
-        raise RequestRejected(issues)
+    # An entry whose envelope is unusable is refused in its own slot: in a batch the others still count.
+    entries = [_entry(e, f"Bundle.entry[{i}]", kind) for i, e in enumerate(raw_entries)]
     return entries, kind
+
+
+_REQUEST_STRINGS = ("method", "url", "ifNoneExist")
+# Bundle.entry.request.method is bound (required) to http-verb: https://hl7.org/fhir/R4/valueset-http-verb.html
+_HTTP_VERBS = ("GET", "HEAD", "POST", "PUT", "DELETE", "PATCH")
+
+
+def _entry(e: Any, root: str, kind: str) -> EntryRequest:
+    """One entry as a request; its envelope checked here, its resource by the ingestor."""
+    if not isinstance(e, dict):
+        return EntryRequest(root=f"{root}.resource", resource=None,
+                            refused=Issue("structure", "a Bundle entry must be a JSON object", (root,)))
+    request = e.get("request")
+    full_url = e.get("fullUrl")
+    refused: Issue | None = None
+    if not isinstance(request, dict) or not request.get("method"):
+        refused = Issue("required", f"entry.request with method and url is required in a {kind} (bdl-3)",
+                        (f"{root}.request",))
+    elif full_url is not None and not isinstance(full_url, str):
+        refused = Issue("value", "fullUrl must be a JSON string (FHIR uri)", (f"{root}.fullUrl",))
+    else:
+        bad = next((k for k in _REQUEST_STRINGS if k in request and not isinstance(request[k], str)), None)
+        if bad is not None:
+            refused = Issue("value", f"request.{bad} must be a JSON string", (f"{root}.request.{bad}",))
+        elif request["method"] not in _HTTP_VERBS:
+            refused = Issue("code-invalid", f"request.method {request['method']!r} is not in the required value "
+                            f"set http-verb ({', '.join(_HTTP_VERBS)}); codes are case-sensitive",
+                            (f"{root}.request.method",))
+    if refused is not None:
+        return EntryRequest(root=f"{root}.resource", resource=e.get("resource"), refused=refused)
+    assert isinstance(request, dict)
+    return EntryRequest(root=f"{root}.resource", resource=e.get("resource"), method=request["method"],
+                        url=request.get("url"), if_none_exist=request.get("ifNoneExist"), full_url=full_url)
 
 
 async def _write(request: Request, ctx: ContextDep, who: RequesterDep, caller: Principal, rtype: str,

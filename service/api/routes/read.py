@@ -40,7 +40,7 @@ def read(rtype: str, rid: str, ctx: ContextDep, who: RequesterDep) -> Response:
 
 @router.get("/fhir/{rtype}/{rid}/_history/{vid}")
 def vread(rtype: str, rid: str, vid: str, ctx: ContextDep, who: RequesterDep) -> Response:
-    if not vid.isdigit():
+    if not vid.isdigit() or len(vid) > 18:  # no version above the database's 64-bit integers is held
         raise NotFound(f"{rtype}/{rid} has no version {vid!r}")
     return _vread(rtype, rid, int(vid), ctx, who)
 

@@ -235,7 +235,7 @@ def events(sid: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Re
 def _number(value: str | None) -> int | None:
     if value is None:
         return None
-    if not value.isdigit():
-        raise RequestRejected([Issue("value", f"event numbers are whole numbers, not {value!r}")])
+    if not value.isdigit() or len(value) > 18:  # beyond the database's 64-bit integers
+        raise RequestRejected([Issue("value", f"event numbers are whole numbers below 10^18, not {value!r}")])
     return int(value)
 
