@@ -23,8 +23,10 @@ log = logging.getLogger("lytestream")
 
 
 def internal_error() -> Response:
-    return outcome_response([Issue("exception", "internal error; nothing from this request was stored",
-                                   severity="fatal")], 500)
+    # Not "nothing was stored": the fault may come after the unit of work committed. A resend is
+    # harmless either way (an identical resend changes nothing).
+    return outcome_response([Issue("exception", "internal error; send the request again (an identical resend "
+                                   "changes nothing if it was stored)", severity="fatal")], 500)
 
 
 class LastResort:

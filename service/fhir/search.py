@@ -8,6 +8,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 
 from service.errors import Issue, RequestRejected
+from service.fhir.datetimes import without_leap_second
 
 __all__ = ["Token", "codes_in_system", "date_bounds", "intersect", "tokens"]
 
@@ -17,11 +18,14 @@ _PREFIX = re.compile(r"^(eq|ge|gt|le|lt)?(\d{4}(-\d{2}(-\d{2}(T.+)?)?)?)$")
 def _range(text: str) -> tuple[datetime, datetime]:
     """The implicit range a FHIR date value covers (a day, a month, a year, or an instant)."""
     if "T" in text:
-        start = datetime.fromisoformat(text.replace("Z", "+00:00"))
+        read = without_leap_second(text)
+        start = datetime.fromisoformat(read.replace("Z", "+00:00"))
         if start.tzinfo is None:
             raise ValueError("a search date-time needs a UTC offset")
         start = start.astimezone(UTC)
-        return start, start + timedelta(seconds=1)
+        # A leap second (23:59:60, which FHIR allows) is read as the last instant of second 59, as
+        # stored results are; its second is then that last microsecond.
+        return start, start + (timedelta(microseconds=1) if read != text else timedelta(seconds=1))
     parts = [int(p) for p in text.split("-")]
     if len(parts) == 3:
         start = datetime(parts[0], parts[1], parts[2], tzinfo=UTC)
