@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 import uuid
 from collections.abc import Iterator
 from datetime import UTC, datetime
@@ -16,6 +17,7 @@ from sqlalchemy import create_engine, text
 from service.auth.tokens import mint
 from service.clock import FixedClock
 from service.config import Settings
+from service.db.engine import Database
 from service.main import build_context, create_app
 
 # CI runs the property tests on a fixed sequence of examples (HYPOTHESIS_PROFILE=ci in .ci/run), so
@@ -84,8 +86,23 @@ def clock() -> FixedClock:
     return FixedClock(datetime(2026, 3, 2, 12, 0, tzinfo=UTC))
 
 
+@pytest.fixture(scope="session")
+def _migrated_sqlite(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """One SQLite file brought to the newest migration, copied for each API test instead of migrating
+    each one afresh (the migration itself is tested on an empty store in tests/db/test_migrations.py)."""
+    path = tmp_path_factory.mktemp("template") / "lytestream.db"
+    db = Database(f"sqlite:///{path}")
+    db.create_schema()
+    db.dispose()
+    return path
+
+
 @pytest.fixture
-def settings(database_url: str, tmp_path: Path) -> Settings:
+def settings(database_url: str, tmp_path: Path, _migrated_sqlite: Path) -> Settings:
+    if database_url.startswith("sqlite:///"):
+        target = Path(database_url.removeprefix("sqlite:///"))
+        if not target.exists():
+            shutil.copyfile(_migrated_sqlite, target)
     return Settings(database_url=database_url, data_dir=tmp_path, base_url="http://testserver/fhir", scheduler=False)
 
 
