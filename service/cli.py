@@ -159,8 +159,7 @@ def replay(
     from service.replay import replay_file
 
     summary = replay_file(file, url, bundle_size=bundle_size, console=console, token=token)
-    typer.echo(f"{summary.total} entries: stored {summary.stored}, patient identities {summary.recorded}, "
-               f"dropped {summary.dropped} (not watched), refused {summary.refused}")
+    typer.echo(summary.headline())
     for line in [*summary.warnings[:20], *summary.errors[:20]]:
         typer.echo(line)
     if summary.refused:

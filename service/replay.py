@@ -34,6 +34,12 @@ class ReplaySummary:
     errors: list[str] = field(default_factory=list)  # one line per refusal
     warnings: list[str] = field(default_factory=list)  # drops the service thinks are mistakes (e.g. a code typo)
 
+    def headline(self) -> str:
+        """One line: what became of the entries. A dropped entry is never called accepted."""
+        mistyped = f"; {len(self.warnings)} of them under a likely mistyped code, listed below" if self.warnings else ""
+        return (f"{self.total} entries: stored {self.stored}, patient identities {self.recorded}, "
+                f"dropped {self.dropped} (not watched{mistyped}), refused {self.refused}")
+
 
 def to_entry(resource: dict[str, Any]) -> dict[str, Any]:
     """A Bundle entry that makes a resend harmless: PUT by identifier where there is one."""

@@ -9,7 +9,7 @@ import orjson
 from fastapi.testclient import TestClient
 from rich.console import Console
 
-from service.replay import replay_file, to_entry
+from service.replay import ReplaySummary, replay_file, to_entry
 from tests.factories import observation
 
 
@@ -85,3 +85,12 @@ def test_dropped_entries_are_counted_as_dropped_not_accepted_and_suspect_codes_a
     assert (summary.total, summary.stored, summary.dropped, summary.recorded, summary.refused) == (4, 1, 2, 1, 0)
     (warning,) = summary.warnings
     assert warning.startswith("line 3: not stored") and "2951-2" in warning
+
+
+def test_the_summary_line_separates_stored_dropped_mistyped_and_refused_and_never_says_accepted() -> None:
+    summary = ReplaySummary(total=7, stored=3, recorded=1, dropped=2, refused=1,
+                            warnings=["line 4: not stored: 2951-3 is not a valid LOINC code …"])
+    line = summary.headline()
+    assert line == ("7 entries: stored 3, patient identities 1, dropped 2 (not watched; 1 of them under a "
+                    "likely mistyped code, listed below), refused 1")
+    assert "accepted" not in line

@@ -85,10 +85,16 @@ def _parse(code: str) -> _Parsed | None:
     or osmolality."""
     if not code or code != code.strip():
         return None
+    import pint  # loaded with the registry (see _registry); this parse is cached
+
     reg = _registry()
     try:
         q = reg.from_ucum(code)
     except Exception:  # noqa: BLE001 - the library raises several kinds for codes outside UCUM
+        return None
+    if not isinstance(q, pint.Quantity):
+        # An annotation alone ("{rbc}") is valid UCUM for the unit one (UCUM §2.6); the library hands
+        # back its parse token rather than a quantity. A unit of one is no concentration.
         return None
     names = [str(u) for u in q.units._units]
     amount = (_Amount.OSMOLE if any("osmole" in n for n in names)

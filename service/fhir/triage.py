@@ -3,6 +3,12 @@
 A real panel carries a dozen analytes and lytestream watches four: results of codes outside the
 catalogue, and medications that are not insulin, are acknowledged and dropped here without being
 validated or stored.
+
+A result that looks like a watched one sent wrong (service/domain/code_mistakes.py) is dropped the
+same way, as a warning naming the likely mistake, and counted per client. Not a 422: in a
+transaction one mistyped mapping would then refuse the Bundle's good results too, and holding back
+a correctly coded sodium or potassium to make a point costs more than the warning; the count in
+$summary and the dropped-code AuditEvent are what make the mapping get fixed.
 """
 
 from __future__ import annotations

@@ -65,3 +65,14 @@ def _count_for(summary: dict[str, object], client: str) -> int | None:
                 if part["name"] == "by_client":
                     return next((c["valueInteger"] for c in part["part"] if c["name"] == client), None)
     return None
+
+
+def test_a_wrong_check_digit_with_no_system_is_named_and_counted(client: TestClient) -> None:
+    obs = observation("nosys", code="2951-3", value=115)
+    del obs["code"]["coding"][0]["system"]
+    r = client.post("/fhir", content=dumps(bundle("batch", obs)), headers=HEADERS)
+    (issue,) = r.json()["entry"][0]["response"]["outcome"]["issue"]
+    assert issue["severity"] == "warning"
+    assert "2951-2" in issue["diagnostics"] and "no system" in issue["diagnostics"]
+    (event,) = [e["resource"] for e in client.get("/fhir/AuditEvent?subtype=dropped-code").json()["entry"]]
+    assert event["agent"][0]["who"]["identifier"]["value"] == "test-suite"

@@ -94,3 +94,103 @@ def test_mass_conversions_agree_with_the_ucum_library_and_the_molar_mass(unit: s
 def test_unit_text_parsed_as_ucum_when_no_code_is_sent() -> None:
     assert to_canonical(entry(SODIUM), 140.0, code=None, text="mmol/l") == 140.0
     assert to_canonical(entry(SODIUM), 140.0, code=None, text="mEq/L") == 140.0  # the common display form
+
+
+# UCUM functional tests (G. Grieve et al., ucum.org/docs/functional-tests, validation cases by id):
+# codes the file calls valid UCUM, of a concentration or osmolality.
+@pytest.mark.parametrize(("case", "loinc", "unit"), [
+    ("1-166", SODIUM, "mmol/l"),
+    ("1-183", GLUCOSE_MOLAR, "umol/l"),
+    ("1-147", GLUCOSE_MASS, "g/l"),
+    ("k=1=169", SODIUM, "mol/L"),
+    ("k=1=177", SODIUM, "mol/m3"),
+    ("k=1=227", GLUCOSE_MOLAR, "umol/L"),
+    ("k=1=255", SODIUM, "meq/L"),
+    ("k=1=253", GLUCOSE_MASS, "g/dL"),
+    ("k=1=171", GLUCOSE_MASS, "ug/L"),
+    ("k=1=206", GLUCOSE_MASS, "kg/L"),
+    ("k=1=214", GLUCOSE_MASS, "kg/m3"),
+])
+def test_functional_test_valid_codes_of_the_property_are_accepted_as_the_library_converts(
+    case: str, loinc: str, unit: str
+) -> None:
+    e = entry(loinc)
+    got = to_canonical(e, 1.0, code=unit, text=None)
+    if e.quantity.name == "MASS":
+        expected = ucum.from_ucum(unit).to("g/L").magnitude / GLUCOSE_MOLAR_MASS * 1000
+    else:
+        expected = ucum.from_ucum(unit).to("mmol/L").magnitude
+    assert got == pytest.approx(expected, rel=1e-14), case
+
+
+# The same file's invalid cases (by id): none may be taken as a unit, and none may crash the parse.
+@pytest.mark.parametrize(("case", "unit"), [
+    ("1-102", "m/"), ("1-108", "10+3/ul"), ("1-115a", "rad2{錠}"), ("1-116a", "{a}rad2{b}"),
+    ("1-118", "{|}1"), ("1-149", "iU"), ("1-210", "molv"), ("1-299", "mmol/12h"), ("1-305", "mmol/kg[H20]"),
+])
+def test_functional_test_invalid_codes_are_refused(case: str, unit: str) -> None:
+    for loinc in (SODIUM, GLUCOSE_MASS, OSMOLALITY):
+        with pytest.raises(UnitNotAccepted):
+            to_canonical(entry(loinc), 1.0, code=unit, text=None)
+
+
+# UCUM §2.6 (annotations): an annotation alone is a valid unit of one, such as "{rbc}" (functional
+# tests 1-119 "{e}"): a unit of one is no concentration, so it is refused, never a crash.
+@pytest.mark.parametrize("unit", ["{rbc}", "{e}", "{}", "1{c}"])
+def test_an_annotation_alone_is_refused_as_a_unit_of_one(unit: str) -> None:
+    with pytest.raises(UnitNotAccepted):
+        to_canonical(entry(SODIUM), 1.0, code=unit, text=None)
+
+
+_UCUM_CHARS = "mMuUdDcCkKgGlLoOsSeEqQ/.*-+0123456789{}[]()_'H% "
+
+
+@given(st.text(alphabet=_UCUM_CHARS, max_size=14) | st.text(max_size=8) | st.from_regex(r"\{[a-z]*\}", fullmatch=True))
+def test_any_unit_string_is_accepted_or_refused_never_an_error(unit: str) -> None:
+    for loinc in (SODIUM, GLUCOSE_MASS, OSMOLALITY):
+        try:
+            to_canonical(entry(loinc), 1.0, code=unit, text=None)
+        except UnitNotAccepted:
+            pass
+
+
+# Built from UCUM's own parts (table 1 prefixes; the mole, equivalent, osmole and gram; the litre in
+# both symbols, the cubic metre and decimetre; an optional annotation): whatever to_canonical accepts
+# converts exactly as the UCUM library converts it, and what the library reads as the property is accepted.
+_PREFIX = st.sampled_from(["", "m", "u", "n", "p", "k", "d", "c"])
+_SUBSTANCE = st.sampled_from(["mol", "eq", "osm", "g"])
+_PER = st.sampled_from(["L", "l", "dL", "dl", "mL", "ul", "m3", "dm3", "cm3", "kg", "g", "mg"])
+_NOTE = st.sampled_from(["", "{H2O}", "{total}"])
+
+
+@given(_PREFIX, _SUBSTANCE, _PER, _NOTE, st.sampled_from([SODIUM, GLUCOSE_MASS, GLUCOSE_MOLAR, OSMOLALITY]))
+def test_every_built_unit_is_accepted_exactly_when_it_fits_and_converts_as_the_library_does(
+    prefix: str, amount: str, per: str, note: str, loinc: str
+) -> None:
+    unit = f"{prefix}{amount}/{per}{note}"
+    e = entry(loinc)
+    try:
+        q = ucum.from_ucum(unit)
+        dims = dict(q.dimensionality)
+    except Exception:  # noqa: BLE001 - the library's own refusal: then ours must refuse too
+        with pytest.raises(UnitNotAccepted):
+            to_canonical(e, 1.0, code=unit, text=None)
+        return
+    per_volume = dims.get("[length]") == -3
+    fits = {
+        "MOLAR": per_volume and (amount == "mol" or (amount == "eq" and loinc == SODIUM)),
+        "MASS": per_volume and amount == "g",
+        "OSMOLALITY": not per_volume and dims.get("[mass]") == -1 and amount in ("mol", "osm"),
+    }[e.quantity.name]
+    if not fits:
+        with pytest.raises(UnitNotAccepted):
+            to_canonical(e, 1.0, code=unit, text=None)
+        return
+    got = to_canonical(e, 1.0, code=unit, text=None)
+    if e.quantity.name == "MASS":
+        expected = q.to("g/L").magnitude / GLUCOSE_MOLAR_MASS * 1000
+    elif e.quantity.name == "OSMOLALITY":
+        expected = q.to("mmol/kg").magnitude
+    else:
+        expected = q.to("mmol/L").magnitude
+    assert got == pytest.approx(expected, rel=1e-12), unit
