@@ -11,7 +11,7 @@ terminologies-systems.html: the URI is to be used, not the OID).
 from __future__ import annotations
 
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.domain.catalogue import CATALOGUE, LOINC_SYSTEM, loinc_check_digit
@@ -70,6 +70,7 @@ def test_every_watched_code_with_any_other_check_digit_is_named(code: str, digit
     assert loinc_check_digit(base) == int(check)  # the catalogue itself is sound
 
 
+@settings(deadline=None)  # the first example pays for imports; a deadline would make that a flake
 @given(st.lists(st.fixed_dictionaries({}, optional={"system": st.one_of(st.text(), st.integers(), st.none()),
                                                     "code": st.one_of(st.text(), st.integers(), st.none())}),
                 max_size=3))
