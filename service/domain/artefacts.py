@@ -39,11 +39,12 @@ def suspects(results: Sequence[LabResult], policy: Policy) -> Mapping[str, str]:
     _edta(results, policy, found)
     within = timedelta(hours=policy.artefacts.spike_within_hours)
     series: dict[tuple[Analyte, Method], list[LabResult]] = {}
+    read = {analyte: read_specimens(analyte, policy) for analyte in policy.artefacts.delta}
     for r in results:
         # Only results some rule reads: one no rule reads (a point-of-care sodium under a policy that
         # reads none) must not make a readable neighbour look like a jump, nor change any finding.
         if (r.analyte in policy.artefacts.delta and r.value is not None and r.comparator is None
-                and not r.calculated and r.specimen in read_specimens(r.analyte, policy)):
+                and not r.calculated and r.specimen in read[r.analyte]):
             series.setdefault((r.analyte, r.method), []).append(r)
     for (analyte, _), same in series.items():
         check = policy.artefacts.delta[analyte]
