@@ -68,11 +68,13 @@ def wire_type_issues(resource: dict[str, Any], model: Any, root: str) -> list[Is
 
 def _wrong_json_type(kind: Kind, value: Any) -> str:
     """Empty when ``value`` has the JSON type ``kind`` asks for; else what it was, in words."""
-    ok = {
-        "number": isinstance(value, int | float) and not isinstance(value, bool),
-        "boolean": isinstance(value, bool),
-        "string": isinstance(value, str),
-    }[kind]
+    # Per primitive on the ingest path: the common case (a string) answers first, with no dict built.
+    if kind == "string":
+        ok = isinstance(value, str)
+    elif kind == "number":
+        ok = isinstance(value, int | float) and not isinstance(value, bool)
+    else:
+        ok = isinstance(value, bool)
     if ok:
         return ""
     got = ("boolean" if isinstance(value, bool) else "number" if isinstance(value, int | float)
