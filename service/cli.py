@@ -22,6 +22,9 @@ app.add_typer(token_app, name="token")
 app.add_typer(audit_app, name="audit")
 console = Console(stderr=True)
 
+# Addresses that mean "every interface": serving on them needs the public base URL spelled out.
+_ALL_INTERFACES = frozenset({"0.0.0.0", "::", "[::]"})
+
 DatabaseUrl = Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
 DataDir = Annotated[Path | None, typer.Option(help="where the embedded SQLite database lives")]
 
@@ -52,6 +55,12 @@ def serve(
 
     settings = _settings(database_url, data_dir)
     if "base_url" not in settings.model_fields_set:
+        if host in _ALL_INTERFACES:
+            # Behind a proxy or in a container the bind address says nothing of how clients reach us, and
+            # a guessed base URL would go into every Location header and Bundle link.
+            typer.echo(f"refusing to listen on {host} without LYTESTREAM_BASE_URL: set it to the public FHIR "
+                       "base URL clients use, e.g. https://alerts.example.org/fhir", err=True)
+            raise typer.Exit(code=2)
         settings = settings.model_copy(update={"base_url": f"http://{host}:{port}/fhir"})
     # Migrate once here, before any worker starts; the workers read the same settings from the environment.
     db = Database(settings.resolved_database_url)
