@@ -88,7 +88,11 @@ rm -f wheels/lytestream-*.whl  # the package itself is rebuilt every time; depen
 "$PY" -m pip wheel --quiet --disable-pip-version-check . -w wheels 2> >(grep -v "is ignored" >&2)
 say "wheels built in $(since "$t")"
 t=$(date +%s)
-DOCKER_BUILDKIT=0 docker build --quiet --build-arg BASE="$BASE_IMAGE" -t "$IMAGE" . >/dev/null
+# The legacy builder: Debian's engine has no buildx, and the Dockerfile needs nothing newer.
+DOCKER_BUILDKIT=0 docker build --quiet --build-arg BASE="$BASE_IMAGE" -t "$IMAGE" . >"$STATE/build.log" 2>&1 \
+  || { tail -n 30 "$STATE/build.log" >&2; say "FAIL: the image did not build"; exit 1; }
+# The previous build's image, untagged now; only on an engine of our own (another's images are not ours).
+[ -z "$DOCKERD_PID" ] || docker image prune -f >/dev/null
 say "image $IMAGE built in $(since "$t") ($(docker image inspect "$IMAGE" --format '{{.Size}}' | awk '{printf "%.0f MB", $1/1e6}'))"
 
 # --- 4. the container ------------------------------------------------------------------------------

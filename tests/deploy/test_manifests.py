@@ -101,6 +101,28 @@ def _compose() -> dict[str, Any]:
     return loaded
 
 
+def _compose_errors(doc: dict[str, Any]) -> list[str]:
+    """What the Compose Specification's schema (as vendored by check-jsonschema, read offline) finds."""
+    import json
+    from importlib import resources
+
+    import jsonschema
+
+    schema = json.loads(resources.files("check_jsonschema.builtin_schemas.vendor")
+                        .joinpath("compose-spec.json").read_text("utf-8"))
+    return [e.message for e in jsonschema.validators.validator_for(schema)(schema).iter_errors(doc)]
+
+
+def test_the_compose_file_passes_the_compose_specification_schema() -> None:
+    assert _compose_errors(_compose()) == []
+
+
+def test_the_compose_schema_check_catches_a_misspelt_field() -> None:
+    broken = _compose()
+    broken["services"]["proxy"]["helthcheck"] = broken["services"]["proxy"].pop("healthcheck")
+    assert any("helthcheck" in e for e in _compose_errors(broken))
+
+
 def test_compose_runs_postgres_two_replicas_and_the_proxy_with_healthchecks() -> None:
     services = _compose()["services"]
     assert {"postgres", "migrate", "lytestream-1", "lytestream-2", "proxy"} == set(services)
