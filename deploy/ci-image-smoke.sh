@@ -30,7 +30,7 @@ since() { echo "$(( $(date +%s) - $1 )) s"; }
 
 cleanup() {
   docker rm -f "$NAME" >/dev/null 2>&1 || true
-  if [ -n "$DOCKERD_PID" ]; then
+  if [ -n "$DOCKERD_PID" ] && kill -0 "$DOCKERD_PID" 2>/dev/null; then
     kill "$DOCKERD_PID" 2>/dev/null || true
     for _ in $(seq 1 30); do kill -0 "$DOCKERD_PID" 2>/dev/null || break; sleep 0.5; done
     kill -9 "$DOCKERD_PID" 2>/dev/null || true
