@@ -88,7 +88,9 @@
         scales: {
           x: { type: "linear", min: data.window.start, max: data.window.end, afterBuildTicks: roundTicks,
                ticks: { autoSkip: true, maxRotation: 0, callback: function (v) { return format.format(new Date(v)); } } },
-          y: { min: yMin, max: yMax, title: { display: true, text: panel.unit } }
+          // One width for every panel's value axis, so the time axes line up from panel to panel.
+          y: { min: yMin, max: yMax, title: { display: true, text: panel.unit }, ticks: { includeBounds: false },
+               afterFit: function (scale) { scale.width = 64; } }
         },
         plugins: {
           legend: { display: datasets.length > 1, labels: { usePointStyle: true } },
