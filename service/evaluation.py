@@ -17,15 +17,17 @@ from service.db.alerts import paged_of, record_page
 from service.db.engine import Database
 from service.db.flags import (
     FlagWrite,
+    drop_acknowledgement,
     open_flags,
     patients_to_recheck,
     subjects,
     write_changes,
+    write_event_version,
 )
-from service.db.subscriptions import enqueue_events, flag_version
+from service.db.subscriptions import enqueue_events
 from service.db.timeline import load_timelines
 from service.domain.alerting import Change, Paged, measure_of, page_reason
-from service.domain.arrival import note_arrival_delay
+from service.domain.arrival import duration_words, note_arrival_delay
 from service.domain.findings import Finding, Priority
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
@@ -90,6 +92,8 @@ class Evaluator:
             sent = Paged(priority, measure_of(row.rule, numbers))
             record_page(session=session, flag_id=w.id, paged=sent, reopens_escalation=reason.reopens_escalation,
                         now=now)
+            if reason.reopens_escalation:  # an older acknowledgement no longer covers this version
+                drop_acknowledgement(session=session, written=w)
             last[w.id] = sent
             paging.append(w)
         return paging
@@ -117,10 +121,16 @@ class Evaluator:
                 db.lock_patients(session, [item.patient_key])
                 if not claim_escalation(session=session, due=item, after=after, now=now):
                     continue  # another replica took this round, or the Flag changed since it was found
-                flag = flag_version(session=session, flag_id=item.flag_id, version=item.version_id)
-                if flag is not None:
-                    sent += enqueue_events(session=session, topic=FLAG_ESCALATED, now=now,
-                                           flags=[(item.flag_id, item.version_id, "update", flag)])
+                # The escalation is a Flag version of its own, so the Flag says it was escalated and
+                # for how long nobody acknowledged it; the rule's columns are untouched (no difference
+                # for the next evaluation to undo).
+                key = item.patient_key
+                subject = subjects(session=session, patient_keys=[key]).get(key, {})
+                lead = f"Escalation {item.round}: unacknowledged for {duration_words(now - item.priority_since)}. "
+                w = write_event_version(session=session, flag_id=item.flag_id, subject=subject, lead=lead, now=now)
+                event = [(w.id, w.version_id, interaction_for(w.kind), w.flag)]
+                enqueue_events(session=session, topic=FLAG_CHANGED, now=now, flags=event)
+                sent += enqueue_events(session=session, topic=FLAG_ESCALATED, now=now, flags=event)
         return sent
 
     def recheck(self, db: Database, now: datetime) -> int:

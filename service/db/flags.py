@@ -11,13 +11,16 @@ import orjson
 from sqlalchemy import insert, or_, select, update
 from sqlmodel import Session
 
+from service.db.acks import covering_acks
 from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag
-from service.fhir.flag_render import FlagView, render_flag
+from service.fhir.flag_render import ACKNOWLEDGEMENT_URL, AckView, FlagView, render_flag
 
 __all__ = [
     "FlagWrite",
+    "drop_acknowledgement",
+    "write_event_version",
     "open_flags",
     "patients_to_recheck",
     "subjects",
@@ -122,7 +125,7 @@ def write_changes(
                 status=status, period_end=end, version_id=version, last_updated=now))
             kind = "close" if isinstance(change, CloseFlag) else "withdraw"
         current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
-        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        flag = _render(session, current, subject_of.get(current.patient_key, {}))
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite(kind, rid, version, flag, current))
@@ -165,7 +168,7 @@ def write_late_flags(
             session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(version_id=version, last_updated=now,
                                                                            **values))
         current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
-        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        flag = _render(session, current, subject_of.get(current.patient_key, {}))
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite(kind, rid, version, flag))
@@ -203,11 +206,45 @@ def withdraw_late_flags(
         session.execute(update(_FLAG).where(_FLAG.c.id == row.id).values(
             status="entered-in-error", version_id=version, last_updated=now))
         current = session.execute(select(_FLAG).where(_FLAG.c.id == row.id)).one()
-        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        flag = _render(session, current, subject_of.get(current.patient_key, {}))
         session.execute(insert(_V).values(resource_type="Flag", id=row.id, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite("withdraw", row.id, version, flag))
     return written
+
+
+def write_event_version(
+    *, session: Session, flag_id: str, subject: Mapping[str, Any], lead: str, now: datetime
+) -> FlagWrite:
+    """A new version of the Flag that changes nothing the rules decide: it shows what happened to it
+    (an acknowledgement, an escalation) in ``lead`` before the sentence, and the acknowledgement that
+    now covers it. The flag row's evidence, numbers and sentence stay as they were, so the next
+    evaluation does not see the event as a difference."""
+    row = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).one()
+    version = row.version_id + 1
+    session.execute(update(_FLAG).where(_FLAG.c.id == flag_id).values(version_id=version, last_updated=now))
+    current = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).one()
+    flag = _render(session, current, subject, lead)
+    session.execute(insert(_V).values(resource_type="Flag", id=flag_id, version_id=version, last_updated=now,
+                                      request_id=None, resource=orjson.dumps(flag)))
+    return FlagWrite("update", flag_id, version, flag, current)
+
+
+def drop_acknowledgement(*, session: Session, written: FlagWrite) -> None:
+    """Take the acknowledgement off a version just written (not yet announced): a page that asks for a
+    fresh acknowledgement (raised again, a priority rise) was decided after it was rendered."""
+    kept = [e for e in written.flag["extension"] if e["url"] != ACKNOWLEDGEMENT_URL]
+    if len(kept) == len(written.flag["extension"]):
+        return
+    written.flag["extension"] = kept
+    session.execute(update(_V).where(_V.c.resource_type == "Flag", _V.c.id == written.id,
+                                     _V.c.version_id == written.version_id)
+                    .values(resource=orjson.dumps(written.flag)))
+
+
+def _render(session: Session, row: Any, subject: Mapping[str, Any], lead: str = "") -> dict[str, Any]:
+    ack = covering_acks(session=session, flags=[row]).get(row.id)
+    return render_flag(_view(row, subject, ack, lead))
 
 
 def _existing(session: Session, f: Finding) -> Any:
@@ -224,12 +261,12 @@ def _finding_values(f: Finding, policy_hash: str) -> dict[str, Any]:
     }
 
 
-def _view(r: Any, subject: Mapping[str, Any]) -> FlagView:
+def _view(r: Any, subject: Mapping[str, Any], ack: AckView | None = None, lead: str = "") -> FlagView:
     return FlagView(
         id=r.id, version_id=r.version_id, last_updated=r.last_updated, status=r.status, rule=r.rule,
         episode=r.episode, priority=r.priority, period_start=r.period_start, period_end=r.period_end,
         evidence=orjson.loads(r.evidence), numbers=orjson.loads(r.numbers), sentence=r.sentence,
-        subject=subject, encounter=r.encounter, policy_hash=r.policy_hash,
+        subject=subject, encounter=r.encounter, policy_hash=r.policy_hash, acknowledgement=ack, lead=lead,
     )
 
 

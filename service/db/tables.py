@@ -198,7 +198,8 @@ class FlagAck(SQLModel, table=True):
     flag_id: str
     flag_version: int
     acknowledged_at: datetime = _utc(nullable=False)
-    client: str
+    client: str  # the token's client
+    person: str | None = None  # the person who acknowledged, when the caller named one
     note: str | None = None
 
 

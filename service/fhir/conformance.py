@@ -69,12 +69,23 @@ def _operation_definitions() -> list[dict[str, Any]]:
            "kind": "operation", "affectsState": True, "code": "acknowledge", "resource": ["Flag"],
            "system": False, "type": False, "instance": True,
            "description": "Record that the team has seen this active Flag: its escalation stops for the priority "
-                          "it had when acknowledged. " + CAUTION,
+                          "it had when acknowledged, and a new Flag version shows the acknowledgement (extension "
+                          "flag-acknowledgement). Acknowledging the version an acknowledgement wrote changes "
+                          "nothing and says who acknowledged it and when (already = true). " + CAUTION,
            "parameter": [
                _param("note", "in", "string", "free text kept with the acknowledgement (at most 2000 characters)"),
-               _param("flag", "out", "Reference", "the Flag version acknowledged", 1),
+               _param("who", "in", "string", "the person acknowledging, when not the token's client (at most 200 "
+                                             "characters); a valueReference with a display is read as that "
+                                             "display"),
+               _param("flag", "out", "Reference", "the Flag version that shows the acknowledgement", 1),
                _param("acknowledged", "out", "dateTime", "when", 1),
-               _param("by", "out", "string", "the client the token names", 1),
+               _param("by", "out", "string", "the person named by who, else the client the token names", 1),
+               _param("client", "out", "string", "the client the token names", 1),
+               _param("note", "out", "string", "the note kept"),
+               _param("already", "out", "boolean", "true when this version was already acknowledged: nothing "
+                                                   "was written, and by and acknowledged are the earlier "
+                                                   "acknowledgement's", 1),
+               _param("message", "out", "string", "what happened, in words", 1),
            ]}
     summary = {"resourceType": "OperationDefinition", "id": "Flag-summary",
                "url": canonical("OperationDefinition", "Flag-summary"), "name": "FlagSummary", **_COMMON,

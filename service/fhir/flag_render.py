@@ -2,7 +2,10 @@
 
 The Flag carries its evidence (one version-specific ``flag-detail`` per result), its priority
 (``flag-priority``), and an extension of ours with the rule, the episode, the computed numbers and the
-hash of the policy it was judged under, so an analyst can explain it later from the Flag alone.
+hash of the policy it was judged under, so an analyst can explain it later from the Flag alone. While an
+acknowledgement covers it (made at or after the priority it saw began), a second extension of ours,
+``flag-acknowledgement``, says who acknowledged it (``by``: the named person, else the token's client),
+through which ``client``, ``when``, the ``note`` and the ``acknowledgedVersion``.
 """
 
 from __future__ import annotations
@@ -15,6 +18,8 @@ from typing import Any
 from service.fhir.render import CAUTION, fhir_instant
 
 __all__ = [
+    "ACKNOWLEDGEMENT_URL",
+    "AckView",
     "EVALUATION_URL",
     "FlagView",
     "RULE_SYSTEM",
@@ -25,9 +30,21 @@ __all__ = [
 CANONICAL_BASE = "https://lytestream.example/fhir"
 RULE_SYSTEM = f"{CANONICAL_BASE}/CodeSystem/rule"
 EVALUATION_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-evaluation"
+ACKNOWLEDGEMENT_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-acknowledgement"
 FLAG_PRIORITY_URL = "http://hl7.org/fhir/StructureDefinition/flag-priority"
 FLAG_DETAIL_URL = "http://hl7.org/fhir/StructureDefinition/flag-detail"
 _PRIORITY = {"high": ("PH", "High priority"), "medium": ("PM", "Medium priority"), "low": ("PL", "Low priority")}
+
+
+@dataclass(frozen=True, slots=True)
+class AckView:
+    """The acknowledgement a Flag version shows."""
+
+    by: str  # the named person, else the client
+    client: str
+    when: datetime
+    note: str | None
+    version: int  # the Flag version that was acknowledged
 
 
 @dataclass(frozen=True, slots=True)
@@ -49,6 +66,8 @@ class FlagView:
     subject: Mapping[str, Any]
     encounter: str | None
     policy_hash: str
+    acknowledgement: AckView | None = None
+    lead: str = ""  # what this version did, before the sentence ("Acknowledged by …: "); "" for none
 
 
 def render_flag(v: FlagView) -> dict[str, Any]:
@@ -73,11 +92,12 @@ def render_flag(v: FlagView) -> dict[str, Any]:
                 {"system": "http://hl7.org/fhir/flag-priority-code", "code": code, "display": display}]}},
             *({"url": FLAG_DETAIL_URL, "valueReference": {"reference": ref}} for ref in v.evidence),
             {"url": EVALUATION_URL, "extension": evaluation},
+            *([_acknowledgement(v.acknowledgement)] if v.acknowledgement else []),
         ],
         "status": v.status,
         "category": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/flag-category",
                                   "code": "clinical", "display": "Clinical"}]}],
-        "code": {"coding": [{"system": RULE_SYSTEM, "code": v.rule}], "text": v.sentence},
+        "code": {"coding": [{"system": RULE_SYSTEM, "code": v.rule}], "text": v.lead + v.sentence},
         "subject": dict(v.subject),
         "period": {"start": fhir_instant(v.period_start)},
         "author": {"reference": "Device/lytestream", "display": "lytestream"},
@@ -87,3 +107,15 @@ def render_flag(v: FlagView) -> dict[str, Any]:
     if v.encounter:
         flag["encounter"] = {"reference": v.encounter}
     return flag
+
+
+def _acknowledgement(a: AckView) -> dict[str, Any]:
+    parts: list[dict[str, Any]] = [
+        {"url": "by", "valueString": a.by},
+        {"url": "client", "valueString": a.client},
+        {"url": "when", "valueDateTime": fhir_instant(a.when)},
+    ]
+    if a.note:
+        parts.append({"url": "note", "valueString": a.note})
+    parts.append({"url": "acknowledgedVersion", "valuePositiveInt": a.version})
+    return {"url": ACKNOWLEDGEMENT_URL, "extension": parts}
