@@ -15,7 +15,7 @@ from service.db.acks import covering_acks
 from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag
-from service.fhir.flag_render import ACKNOWLEDGEMENT_URL, AckView, FlagView, render_flag
+from service.fhir.flag_render import ACKNOWLEDGEMENT_URL, AckView, FlagView, render_flag, subject_reference
 
 __all__ = [
     "FlagWrite",
@@ -55,19 +55,15 @@ def open_flags(*, session: Session, patient_keys: Iterable[str]) -> dict[str, li
 
 
 def subjects(*, session: Session, patient_keys: Iterable[str]) -> dict[str, dict[str, Any]]:
-    """The FHIR subject Reference for each patient: a literal reference if the feed ever sent one,
-    else an identifier."""
+    """The FHIR subject Reference for each patient, naming it every way the feed has: the first literal
+    reference (by alias order) in ``reference``, the first identifier in ``identifier`` (R4 allows both
+    on one Reference), and every other one in a ``subject-alias`` extension on the Reference."""
     rows = session.execute(select(_ALIAS.c.patient_key, _ALIAS.c.alias).where(
         _ALIAS.c.patient_key.in_(sorted(set(patient_keys)))).order_by(_ALIAS.c.alias))
-    out: dict[str, dict[str, Any]] = {}
+    aliases: dict[str, list[str]] = {}
     for key, alias in rows:
-        kind, _, value = alias.partition(":")
-        if kind == "ref" and "reference" not in out.get(key, {}):
-            out[key] = {"reference": value}
-        elif kind == "id" and key not in out:
-            system, _, ident = value.partition("|")
-            out[key] = {"identifier": {"system": system, "value": ident}}
-    return out
+        aliases.setdefault(key, []).append(alias)
+    return {key: subject_reference(names) for key, names in aliases.items()}
 
 
 class FlagWrite:

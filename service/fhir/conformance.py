@@ -159,6 +159,13 @@ def _rule_code_system() -> dict[str, Any]:
             "concept": [{"code": r.value, "display": r.value.replace("-", " ").capitalize()} for r in Rule]}
 
 
+_FILTER_WORDS = {
+    "patient:identifier": "Flag search parameter patient with the :identifier modifier: system|value of any "
+                          "identifier the Flag names its patient by (subject.identifier or a subject-alias "
+                          "extension)",
+}
+
+
 def _topics() -> list[dict[str, Any]]:
     out = []
     for topic in TOPICS.values():
@@ -170,8 +177,8 @@ def _topics() -> list[dict[str, Any]]:
             "resourceTrigger": [{"description": topic.description,
                                  "resource": "http://hl7.org/fhir/StructureDefinition/Flag",
                                  "supportedInteraction": ["create", "update"]}],
-            "canFilterBy": [{"resource": "Flag", "filterParameter": f,
-                             "description": f"Flag search parameter {f}"} for f in sorted(topic.filters)],
+            "canFilterBy": [{"resource": "Flag", "filterParameter": f, "description": _FILTER_WORDS.get(
+                f, f"Flag search parameter {f}")} for f in sorted(topic.filters)],
             "notificationShape": [{"resource": "Flag"}],
         })
     return out

@@ -23,7 +23,9 @@ __all__ = [
     "EVALUATION_URL",
     "FlagView",
     "RULE_SYSTEM",
+    "SUBJECT_ALIAS_URL",
     "render_flag",
+    "subject_reference",
 ]
 
 # Our own namespace (".example" is reserved, so it can never collide with a real site).
@@ -31,6 +33,9 @@ CANONICAL_BASE = "https://lytestream.example/fhir"
 RULE_SYSTEM = f"{CANONICAL_BASE}/CodeSystem/rule"
 EVALUATION_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-evaluation"
 ACKNOWLEDGEMENT_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-acknowledgement"
+# On Flag.subject: one more name the feed used for the patient (valueReference or valueIdentifier), beyond
+# the subject's own reference and identifier.
+SUBJECT_ALIAS_URL = f"{CANONICAL_BASE}/StructureDefinition/subject-alias"
 FLAG_PRIORITY_URL = "http://hl7.org/fhir/StructureDefinition/flag-priority"
 FLAG_DETAIL_URL = "http://hl7.org/fhir/StructureDefinition/flag-detail"
 _PRIORITY = {"high": ("PH", "High priority"), "medium": ("PM", "Medium priority"), "low": ("PL", "Low priority")}
@@ -68,6 +73,28 @@ class FlagView:
     policy_hash: str
     acknowledgement: AckView | None = None
     lead: str = ""  # what this version did, before the sentence ("Acknowledged by …: "); "" for none
+
+
+def subject_reference(aliases: Sequence[str]) -> dict[str, Any]:
+    """A patient's aliases (``ref:<reference>``, ``id:<system>|<value>``, in a stable order) as one R4
+    Reference: the first literal reference, the first identifier, and the rest as ``subject-alias``."""
+    refs = [a.removeprefix("ref:") for a in aliases if a.startswith("ref:")]
+    ids = [_identifier(a.removeprefix("id:")) for a in aliases if a.startswith("id:")]
+    subject: dict[str, Any] = {}
+    if refs:
+        subject["reference"] = refs[0]
+    if ids:
+        subject["identifier"] = ids[0]
+    rest = [{"url": SUBJECT_ALIAS_URL, "valueReference": {"reference": r}} for r in refs[1:]]
+    rest += [{"url": SUBJECT_ALIAS_URL, "valueIdentifier": i} for i in ids[1:]]
+    if rest:
+        subject["extension"] = rest
+    return subject
+
+
+def _identifier(alias: str) -> dict[str, str]:
+    system, _, value = alias.rpartition("|")
+    return {"system": system, "value": value} if system else {"value": value}
 
 
 def render_flag(v: FlagView) -> dict[str, Any]:
