@@ -8,6 +8,7 @@ from __future__ import annotations
 import logging
 from collections.abc import Iterable, Sequence
 from datetime import datetime, timedelta
+from zoneinfo import ZoneInfo
 
 import orjson
 from sqlmodel import Session
@@ -32,6 +33,7 @@ from service.domain.findings import Finding, Priority
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
 from service.domain.values import Timeline
+from service.domain.wording import narrate
 from service.notify.bundles import interaction_for
 from service.notify.topics import FLAG_ALERT, FLAG_CHANGED, FLAG_ESCALATED
 from service.policy import Policy, policy_hash
@@ -44,10 +46,11 @@ log = logging.getLogger("lytestream.evaluation")
 class Evaluator:
     """Brings the Flags of some patients in line with their data, the policy and ``now``."""
 
-    def __init__(self, *, policy: Policy, lookback: timedelta) -> None:
+    def __init__(self, *, policy: Policy, lookback: timedelta, lab_zone: ZoneInfo | None = None) -> None:
         self.policy = policy
         self.policy_hash = policy_hash(policy)
         self.lookback = lookback
+        self.lab_zone = lab_zone  # collection times are said in it (UTC, said so, when None)
 
     def __call__(self, session: Session, patient_keys: Iterable[str], now: datetime) -> list[FlagWrite]:
         """Re-evaluate these patients (their locks must be held) and write any Flag changes."""
@@ -57,7 +60,10 @@ class Evaluator:
         opened = open_flags(session=session, patient_keys=keys)
         changes: list[FlagChange] = []
         for key in keys:
-            findings = self._noted(evaluate(timelines[key], self.policy, now), timelines[key])
+            timeline = timelines[key]
+            told = narrate(evaluate(timeline, self.policy, now), timeline,
+                           lambda t: evaluate(t, self.policy, now), self.lab_zone)
+            findings = self._noted(told, timeline)
             changes += reconcile(findings, opened.get(key, []), timelines[key].withdrawn, now)
         if not changes:
             return []

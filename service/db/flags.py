@@ -15,6 +15,7 @@ from service.db.acks import covering_acks
 from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag
+from service.domain.wording import closed_lead, untold, withdrawn_lead
 from service.fhir.flag_render import ACKNOWLEDGEMENT_URL, AckView, FlagView, render_flag, subject_reference
 
 __all__ = [
@@ -121,7 +122,8 @@ def write_changes(
                 status=status, period_end=end, version_id=version, last_updated=now))
             kind = "close" if isinstance(change, CloseFlag) else "withdraw"
         current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
-        flag = _render(session, current, subject_of.get(current.patient_key, {}))
+        lead = "" if kind in ("create", "reactivate", "update") else _ending_lead(kind, current)
+        flag = _render(session, current, subject_of.get(current.patient_key, {}), lead)
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite(kind, rid, version, flag, current))
@@ -202,7 +204,7 @@ def withdraw_late_flags(
         session.execute(update(_FLAG).where(_FLAG.c.id == row.id).values(
             status="entered-in-error", version_id=version, last_updated=now))
         current = session.execute(select(_FLAG).where(_FLAG.c.id == row.id)).one()
-        flag = _render(session, current, subject_of.get(current.patient_key, {}))
+        flag = _render(session, current, subject_of.get(current.patient_key, {}), _ending_lead("withdraw", current))
         session.execute(insert(_V).values(resource_type="Flag", id=row.id, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite("withdraw", row.id, version, flag))
@@ -239,8 +241,14 @@ def drop_acknowledgement(*, session: Session, written: FlagWrite) -> None:
 
 
 def _render(session: Session, row: Any, subject: Mapping[str, Any], lead: str = "") -> dict[str, Any]:
+    """The Flag JSON of a row; a version with a ``lead`` of its own (resolved, withdrawn, acknowledged,
+    escalated) quotes the finding's sentence without the finding's lead ("Raised: …")."""
     ack = covering_acks(session=session, flags=[row]).get(row.id)
     return render_flag(_view(row, subject, ack, lead))
+
+
+def _ending_lead(kind: str, row: Any) -> str:
+    return closed_lead() if kind == "close" else withdrawn_lead(row.rule, orjson.loads(row.numbers))
 
 
 def _existing(session: Session, f: Finding) -> Any:
@@ -261,7 +269,8 @@ def _view(r: Any, subject: Mapping[str, Any], ack: AckView | None = None, lead: 
     return FlagView(
         id=r.id, version_id=r.version_id, last_updated=r.last_updated, status=r.status, rule=r.rule,
         episode=r.episode, priority=r.priority, period_start=r.period_start, period_end=r.period_end,
-        evidence=orjson.loads(r.evidence), numbers=orjson.loads(r.numbers), sentence=r.sentence,
+        evidence=orjson.loads(r.evidence), numbers=orjson.loads(r.numbers),
+        sentence=untold(r.sentence) if lead else r.sentence,
         subject=subject, encounter=r.encounter, policy_hash=r.policy_hash, acknowledgement=ack, lead=lead,
     )
 

@@ -156,7 +156,7 @@ def _rule_code_system() -> dict[str, Any]:
     return {"resourceType": "CodeSystem", "id": "rule", "url": RULE_SYSTEM, "name": "LytestreamRule", **_COMMON,
             "description": "The rules whose findings lytestream raises as Flags. " + CAUTION,
             "caseSensitive": True, "content": "complete",
-            "concept": [{"code": r.value, "display": r.value.replace("-", " ").capitalize()} for r in Rule]}
+            "concept": [{"code": r.value, "display": r.display} for r in Rule]}
 
 
 _FILTER_WORDS = {

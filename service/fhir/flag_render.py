@@ -15,6 +15,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
+from service.domain.findings import Rule
 from service.fhir.render import CAUTION, fhir_instant
 
 __all__ = [
@@ -124,7 +125,7 @@ def render_flag(v: FlagView) -> dict[str, Any]:
         "status": v.status,
         "category": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/flag-category",
                                   "code": "clinical", "display": "Clinical"}]}],
-        "code": {"coding": [{"system": RULE_SYSTEM, "code": v.rule}], "text": v.lead + v.sentence},
+        "code": {"coding": [_rule_coding(v.rule)], "text": v.lead + v.sentence},
         "subject": dict(v.subject),
         "period": {"start": fhir_instant(v.period_start)},
         "author": {"reference": "Device/lytestream", "display": "lytestream"},
@@ -134,6 +135,15 @@ def render_flag(v: FlagView) -> dict[str, Any]:
     if v.encounter:
         flag["encounter"] = {"reference": v.encounter}
     return flag
+
+
+def _rule_coding(rule: str) -> dict[str, Any]:
+    coding = {"system": RULE_SYSTEM, "code": rule}
+    try:
+        coding["display"] = Rule(rule).display
+    except ValueError:  # a rule code this build no longer knows: its code alone
+        pass
+    return coding
 
 
 def _acknowledgement(a: AckView) -> dict[str, Any]:
