@@ -92,6 +92,9 @@ class ObservationRecord(SQLModel, table=True):
     status: str
     value: float | None = None  # canonical unit; None when not numeric
     comparator: str | None = None
+    # The value and unit as the lab sent them (the unit's text, else its UCUM code), for sentences.
+    sent_value: float | None = None
+    sent_unit: str | None = None
     effective: datetime = _utc(nullable=False)
     issued: datetime | None = _utc(nullable=True)
     encounter: str | None = None

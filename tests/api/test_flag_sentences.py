@@ -124,3 +124,28 @@ def test_with_a_lab_zone_the_collection_time_is_local_and_names_the_zone(chicago
     (text,) = texts(chicago)
     assert "collected 2026-03-02 02:00 America/Chicago" in text
     assert "UTC" not in text
+
+
+# Glucose at or above 25 mmol/L is critical high (RCPath G158 2017). 600 mg/dL is 33.3 mmol/L (glucose
+# 180.16 g/mol: 600 mg/dL = 6000 mg/L / 180.16 mg/mmol = 33.30 mmol/L).
+
+
+def test_a_value_sent_in_another_unit_is_shown_in_that_unit_with_the_canonical_value_beside_it(
+    client: TestClient,
+) -> None:
+    send(client, observation("g1", code="2345-7", value=600, unit="mg/dL"))
+    (text,) = texts(client)
+    assert text.startswith("Raised: Glucose 600 mg/dL (33.3 mmol/L), at or above the critical limit of 25 mmol/L")
+
+
+def test_a_censored_value_keeps_its_comparator_in_both_units(client: TestClient) -> None:
+    send(client, observation("g1", code="2345-7", value=600, unit="mg/dL", valueQuantity={
+        "value": 600, "comparator": ">", "unit": "mg/dL", "system": "http://unitsofmeasure.org", "code": "mg/dL"}))
+    (text,) = texts(client)
+    assert "Glucose >600 mg/dL (>33.3 mmol/L)" in text
+
+
+def test_a_value_sent_in_the_canonical_unit_is_shown_once(client: TestClient) -> None:
+    send(client, observation("g1", code="14749-6", value=33.3, unit="mmol/L"))
+    (text,) = texts(client)
+    assert "Glucose 33.3 mmol/L, at or above" in text
