@@ -79,7 +79,8 @@ def acknowledge(ctx: AppContext, *, flag_id: str, who: Requester, person: str | 
         previous = session.execute(select(_ACK).where(_ACK.c.flag_id == flag_id)
                                    .order_by(_ACK.c.acknowledged_at.desc(), _ACK.c.flag_version.desc())
                                    .limit(1)).first()
-        if previous is not None and previous.flag_version + 1 == flag.version_id:
+        if (previous is not None and previous.flag_version + 1 == flag.version_id
+                and previous.acknowledged_at == flag.last_updated):
             # The current version is the one that acknowledgement wrote: nothing new has been seen.
             outcome = AckOutcome(flag_id, flag.version_id, previous.flag_version, previous.acknowledged_at,
                                  previous.person or previous.client, previous.client, previous.note, True)

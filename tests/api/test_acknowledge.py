@@ -255,3 +255,19 @@ def test_the_service_function_raises_not_found_for_an_unknown_flag(context: AppC
     with pytest.raises(NotFound):
         acknowledge(context, flag_id="nope", who=Requester(client="board", address=None, request_id="r"),
                     person=None, note=None)
+
+
+def test_acknowledging_a_newer_rule_version_after_an_acknowledgement_is_a_new_acknowledgement(
+    client: TestClient, clock: FixedClock
+) -> None:
+    flag_id = raise_flag(client)
+    ack_as(client, flag_id, {"name": "who", "valueString": "Dr C. Nwosu"})
+    client.post("/fhir", content=dumps(bundle("batch", observation("b", value=117,
+                effective="2026-03-02T08:20:00+00:00"))), headers=HEADERS)  # version 3, from the rule
+    clock.advance(timedelta(minutes=2))
+    r = ack_as(client, flag_id, {"name": "who", "valueString": "RN D. Haddad"})
+    params = {p["name"]: p for p in r.json()["parameter"]}
+    assert params["already"]["valueBoolean"] is False
+    ext = acknowledgement(current(client, flag_id))
+    assert ext is not None and ext["by"] == "RN D. Haddad" and ext["acknowledgedVersion"] == 3
+    assert current(client, flag_id)["meta"]["versionId"] == "4"
