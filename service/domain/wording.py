@@ -47,6 +47,10 @@ def narrate(findings: Sequence[Finding], timeline: Timeline, earlier: Evaluate, 
             out.append(f)
             continue
         newest = max(times)
+        if f.onset >= newest:
+            # The episode began with its newest result (its key is that time): nothing earlier held it.
+            out.append(_told(f, None, newest, zone))
+            continue
         if newest not in before:
             cut = replace(timeline, results=tuple(r for r in timeline.results if r.effective < newest),
                           exposures=tuple(e for e in timeline.exposures if e.start < newest))
