@@ -149,3 +149,11 @@ def test_a_value_sent_in_the_canonical_unit_is_shown_once(client: TestClient) ->
     send(client, observation("g1", code="14749-6", value=33.3, unit="mmol/L"))
     (text,) = texts(client)
     assert "Glucose 33.3 mmol/L, at or above" in text
+
+
+def test_the_glucose_beside_a_corrected_sodium_is_shown_in_the_unit_the_lab_sent(client: TestClient) -> None:
+    # Katz 1973 (factor 1.6 per 5.55 mmol/L above 5.55): sodium 118 with glucose 33.3 mmol/L reads 126 corrected.
+    send(client, observation("na1", value=118), observation("g1", code="2345-7", value=600, unit="mg/dL"))
+    sodium_flag = next(f for f in (e["resource"] for e in client.get("/fhir/Flag").json()["entry"])
+                       if f["code"]["coding"][0]["code"] == "sodium-critical-low")
+    assert "with glucose 600 mg/dL (33.3 mmol/L)" in sodium_flag["code"]["text"]

@@ -117,7 +117,7 @@ def _side(
                 )
                 sentence += (
                     f"; glucose-corrected sodium {fmt(corrected)} mmol/L "
-                    f"with glucose {fmt(glucose.value)} mmol/L"
+                    f"with glucose {shown(glucose)}"
                 )
                 numbers |= {"corrected_sodium": corrected, "glucose": glucose.value}
                 evidence.append(glucose.reference)
