@@ -80,8 +80,8 @@ TOPICS: Mapping[str, Topic] = {
     t.url: t
     for t in (
         Topic(FLAG_CHANGED, "Flag changed",
-              "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn (for "
-              "integrations that keep a copy; responders subscribe to flag-alert).",
+              "Any new version of a Flag we raise: raised, re-raised, updated, acknowledged, escalated, "
+              "closed or withdrawn (for integrations that keep a copy; responders subscribe to flag-alert).",
               _FLAG_FILTERS),
         # The one for responders: a version that changes nothing they must act on is not sent here.
         Topic(FLAG_ALERT, "Flag alert",
@@ -90,8 +90,9 @@ TOPICS: Mapping[str, Topic] = {
               "closed or withdrawn.", _FLAG_FILTERS),
         Topic(FLAG_ESCALATED, "Flag escalated",
               "A Flag of an escalated priority left unacknowledged past the policy interval for its "
-              "priority; one event per interval until it is acknowledged or closed. An acknowledgement "
-              "made before a rise in priority no longer covers it.", _FLAG_FILTERS),
+              "priority: the Flag version each escalation writes, one per interval until it is "
+              "acknowledged or closed. An acknowledgement made before a rise in priority no longer "
+              "covers it.", _FLAG_FILTERS),
     )
 }
 
