@@ -16,7 +16,7 @@ from sqlmodel import Session
 from service.db.tables import Escalation, FlagAck, FlagRecord
 from service.fhir.flag_render import AckView
 
-__all__ = ["DueEscalation", "acknowledge", "claim_escalation", "covering_acks", "due_escalations",
+__all__ = ["DueEscalation", "claim_escalation", "covering_acks", "due_escalations",
            "first_acks", "record_ack"]
 
 _ACK = FlagAck.__table__  # type: ignore[attr-defined]
@@ -29,19 +29,6 @@ def record_ack(*, session: Session, flag_id: str, flag_version: int, client: str
     """Record an acknowledgement of version ``flag_version`` of the Flag."""
     session.execute(insert(_ACK).values(id=str(uuid.uuid4()), flag_id=flag_id, flag_version=flag_version,
                                         acknowledged_at=now, client=client, person=person, note=note))
-
-
-def acknowledge(*, session: Session, flag_id: str, client: str, note: str | None, now: datetime) -> Any:
-    """The row-only acknowledgement the board called before ``service.acknowledging.acknowledge``
-    existed: records an acknowledgement of the current version and returns the flag row (None if
-    unknown), writing no Flag version. Kept only until the board calls the service function; then
-    delete it."""
-    flag = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).first()
-    if flag is None:
-        return None
-    record_ack(session=session, flag_id=flag_id, flag_version=flag.version_id, client=client, person=None,
-               note=note, now=now)
-    return flag
 
 
 def covering_acks(*, session: Session, flags: Sequence[Any]) -> dict[str, AckView]:

@@ -86,10 +86,10 @@ def _facts(session: Session, rows: Sequence[Any]) -> list[FlagFacts]:
 
 def _latest_acks(session: Session, flag_ids: list[str]) -> dict[str, tuple[str, datetime, str | None]]:
     newest: dict[str, tuple[str, datetime, str | None]] = {}
-    for fid, client, at, note in session.execute(
-            select(_ACK.c.flag_id, _ACK.c.client, _ACK.c.acknowledged_at, _ACK.c.note)
+    for fid, person, client, at, note in session.execute(
+            select(_ACK.c.flag_id, _ACK.c.person, _ACK.c.client, _ACK.c.acknowledged_at, _ACK.c.note)
             .where(_ACK.c.flag_id.in_(flag_ids)).order_by(_ACK.c.acknowledged_at, _ACK.c.id)):
-        newest[fid] = (client, at, note)
+        newest[fid] = (f"{person} ({client})" if person else client, at, note)
     return newest
 
 

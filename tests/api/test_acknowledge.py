@@ -271,17 +271,3 @@ def test_acknowledging_a_newer_rule_version_after_an_acknowledgement_is_a_new_ac
     ext = acknowledgement(current(client, flag_id))
     assert ext is not None and ext["by"] == "RN D. Haddad" and ext["acknowledgedVersion"] == 3
     assert current(client, flag_id)["meta"]["versionId"] == "4"
-
-
-def test_the_row_only_acknowledgement_kept_for_the_board_records_a_row_and_writes_no_version(
-    client: TestClient, context: AppContext, clock: FixedClock
-) -> None:
-    from service.db.acks import acknowledge as row_only  # to be deleted once the board calls the service
-
-    flag_id = raise_flag(client)
-    with context.db.session(write=True) as session:
-        assert row_only(session=session, flag_id=flag_id, client="board", note=None, now=clock.now()) is not None
-    later = clock.now() + timedelta(minutes=16)
-    with context.db.session() as session:
-        assert due_escalations(session=session, after={"high": timedelta(minutes=15)}, now=later) == []
-    assert current(client, flag_id)["meta"]["versionId"] == "1"

@@ -195,6 +195,39 @@ def test_acknowledging_records_the_person_the_note_and_an_audit_event(context: A
     assert [e for e in audit_events(context, subtype="acknowledge")]
 
 
+def test_an_acknowledgement_from_the_board_shows_on_the_flag_itself(context: AppContext) -> None:
+    feed(context, observation("a", value=118))
+    fid = flag_id(context)
+    c = signed_in(context, name="Charge Nurse Example")
+    c.post(f"/board/flags/{fid}/acknowledge", data={"csrf": csrf_of(c.get("/board").text), "note": "seen"})
+    with TestClient(create_app(context=context), headers={"Authorization": f"Bearer {token(context, 'system/Flag.rs', 'x')}"}) as api:
+        flag = api.get(f"/fhir/Flag/{fid}").json()
+    ack = next(e for e in flag["extension"] if e["url"].endswith("/flag-acknowledgement"))
+    parts = {p["url"]: next(v for k, v in p.items() if k.startswith("value")) for p in ack["extension"]}
+    assert parts["by"] == "Charge Nurse Example" and parts["client"] == "ward-tablet" and parts["note"] == "seen"
+
+
+def test_acknowledging_the_same_version_again_changes_nothing_and_says_so(context: AppContext) -> None:
+    feed(context, observation("a", value=118))
+    fid = flag_id(context)
+    c = signed_in(context)
+    csrf = csrf_of(c.get("/board").text)
+    c.post(f"/board/flags/{fid}/acknowledge", data={"csrf": csrf, "note": "first"})
+    again = c.post(f"/board/flags/{fid}/acknowledge", data={"csrf": csrf, "note": "second"})
+    assert again.headers["location"] == f"/board?notice=already:{fid}"
+    page = c.get(again.headers["location"]).text
+    assert "already acknowledged" in page and "first" in page and "second" not in page
+
+
+def test_acknowledging_a_closed_flag_from_the_board_says_it_is_closed(context: AppContext) -> None:
+    feed(context, observation("a", value=118))
+    fid = flag_id(context)
+    feed(context, observation("a", value=138, status="corrected"))
+    c = signed_in(context)
+    r = c.post(f"/board/flags/{fid}/acknowledge", data={"csrf": csrf_of(c.get("/board").text)})
+    assert r.headers["location"] == f"/board?notice=closed:{fid}"
+
+
 def test_the_way_back_is_never_another_site(context: AppContext) -> None:
     c = browser(context)
     for target in ("https://evil.example/board", "//evil.example/board", "/fhir/Flag", "/board\\@evil.example"):

@@ -26,6 +26,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 from sqlalchemy import select
 
+from service.acknowledging import NOTE_MAX, acknowledge
 from service.api.access_audit import audit_patient_access
 from service.api.context import AppContext, ContextDep
 from service.api.refusals import RefusalAudit
@@ -36,14 +37,12 @@ from service.auth.tables import ApiToken
 from service.board.session import COOKIE_NAME, BoardSession, SessionInvalid, new_session, open_cookie, seal_cookie
 from service.board.trajectory import trajectory
 from service.board.views import board_rows, local_time
-from service.db.acks import acknowledge
-from service.db.audit import record_audit
 from service.db.board import active_flag_facts, flag_facts
-from service.db.flags import subjects
 from service.db.reads import read_references
 from service.db.timeline import load_timeline
 from service.domain.artefacts import suspects
-from service.fhir.audit_render import AuditFacts, Requester
+from service.errors import NotFound, RequestRejected
+from service.fhir.audit_render import Requester
 from service.fhir.render import CAUTION
 
 __all__ = ["router"]
@@ -52,7 +51,6 @@ log = logging.getLogger("lytestream.board")
 router = APIRouter(include_in_schema=False)
 _TEMPLATES = Jinja2Templates(directory=str(Path(__file__).resolve().parents[2] / "board" / "templates"))
 _MAX_NAME = 80
-_MAX_NOTE = 2000
 
 
 class _NotLoggedIn(Exception):
@@ -216,23 +214,19 @@ async def acknowledge_from_board(request: Request, flag_id: str, ctx: ContextDep
         return _page(request, "refused.html", {"message": "Acknowledging needs "
                                                f"{needed_scope('Flag', 'u')}; this login has read access only.",
                      "session": session}, 403)
-    text = note.strip()[:_MAX_NOTE] or None
+    text = note.strip()[:NOTE_MAX] or None
     who = _requester(request, session)
-    now = ctx.clock.now()
 
     def run() -> str:
-        with ctx.db.session(write=True) as s:
-            flag = acknowledge(session=s, flag_id=flag_id, client=f"{session.person} ({who.client})", note=text,
-                               now=now)
-            if flag is None:
-                return "missing"
-            if flag.status != "active":
+        try:
+            done = acknowledge(ctx, flag_id=flag_id, who=who, person=session.person, note=text)
+        except NotFound:
+            return "missing"
+        except RequestRejected as exc:
+            if exc.status == 409:
                 return "closed"
-            subject = subjects(session=s, patient_keys=[flag.patient_key]).get(flag.patient_key, {})
-            facts = AuditFacts(subtype="operation", operation="$acknowledge", recorded=now, requester=who,
-                               patient=subject, what=[f"Flag/{flag_id}/_history/{flag.version_id}"])
-            record_audit(session=s, events=[(facts, flag.patient_key)], base_url=ctx.settings.base_url)
-            return "acked"
+            raise
+        return "already" if done.already else "acked"
 
     outcome = await run_in_threadpool(run)
     target = _local_path(back)
