@@ -209,7 +209,8 @@ def test_board_fits_the_screen_without_sideways_scrolling(browser: Any, demo_ser
     browser.set_window_size(*size)
     try:
         browser.get(f"{demo_server.url}/board")
-        overflow = browser.execute_script("return document.documentElement.scrollWidth - window.innerWidth;")
+        overflow = browser.execute_script(
+            "return document.documentElement.scrollWidth - document.documentElement.clientWidth;")
         assert overflow <= 0
         if size == (768, 1024):
             browser.save_screenshot(str(ARTEFACTS / "board-tablet.png"))
