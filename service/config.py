@@ -86,6 +86,19 @@ class Settings(BaseSettings):
                     "(never shorter than the send timeout + 2 s); another replica takes over after it",
     )
 
+    # --- operations: logs, metrics (issue 12, observability) ---
+    log_level: Literal["debug", "info", "warning", "error"] = Field(
+        default="info", description="JSON log lines on stderr at this level and above (`serve --log-level`)")
+    # Off by default: the metrics name subscriptions and feeding clients, which is the hospital's network map.
+    # "open" is for a scraper on the same trusted network; "token" asks for any valid bearer token.
+    metrics: Literal["off", "open", "token"] = Field(
+        default="off", description="/metrics (Prometheus text) on the main port: off (404), open (no token), or "
+                                   "token (any valid bearer token)")
+    metrics_multiprocess_dir: Path | None = Field(
+        default=None, description="set by `serve --workers N` (N > 1): where the workers' counters are shared "
+                                  "(prometheus_client multiprocess mode); not set by hand")
+    # --- end operations ---
+
     @field_validator("lab_timezone")
     @classmethod
     def _known_zone(cls, value: str | None) -> str | None:

@@ -10,7 +10,7 @@ from datetime import timedelta
 from urllib.parse import urlsplit
 
 import httpx
-from fastapi import FastAPI, Request
+from fastapi import Depends, FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
 from sqlalchemy.exc import DBAPIError
@@ -21,6 +21,7 @@ from service.api.fhir_io import outcome_response
 from service.api.intake import BodyAborted, BodyIntake
 from service.api.last_resort import LastResort, internal_error
 from service.api.refusals import RefusalAudit, RefusalLimiter
+from service.api.request_log import RequestLog, note_route
 from service.api.routes import audit, conformance, flags, ingest, meta, read, subscriptions, summary
 from service.api.wire import FhirWire
 from service.arrivals import ArrivalReview
@@ -80,7 +81,8 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
 
     docs = ctx.settings.api_docs  # off by default: the OpenAPI description answers without a token
     app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs" if docs else None, redoc_url=None,
-                  openapi_url="/openapi.json" if docs else None, lifespan=lifespan)
+                  openapi_url="/openapi.json" if docs else None, lifespan=lifespan,
+                  dependencies=[Depends(note_route)])
     app.state.ctx = ctx
     app.add_middleware(BodyIntake, max_body_bytes=ctx.settings.max_body_bytes,
                        timeout_s=ctx.settings.body_timeout_seconds, slots=ctx.settings.max_concurrent_bodies)
@@ -151,4 +153,6 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     # Outermost of our middleware: what nothing above handled answers a 500 OperationOutcome there, and is
     # not raised on to the server (which would drop the kept-alive connection).
     app.add_middleware(LastResort)
+    # Outside even that: the request log sees the status the client got, 500s included.
+    app.add_middleware(RequestLog)
     return app

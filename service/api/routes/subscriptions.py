@@ -30,6 +30,7 @@ from service.db.subscriptions import (
     DELETED,
     WITHHELD,
     create_subscription,
+    delivery_trouble,
     events_between,
     flag_version,
     keep_withheld_headers,
@@ -201,7 +202,9 @@ def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
 @router.get("/fhir/Subscription/{sid}/$status", dependencies=[Depends(require("Subscription", "r"))])
 def status(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     with ctx.db.session() as session:
-        state = subscription_state(_owned_row(session, sid, who), ctx.settings.base_url)
+        row = _owned_row(session, sid, who)
+        state = subscription_state(row, ctx.settings.base_url,
+                                   trouble=delivery_trouble(session=session, subscription_id=sid))
     return fhir_response(status_response([state], now=ctx.clock.now()))
 
 
