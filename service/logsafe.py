@@ -20,7 +20,7 @@ from typing import Any
 
 from sqlalchemy.exc import DBAPIError
 
-__all__ = ["WithholdExceptionText", "describe", "log_config", "safe_traceback"]
+__all__ = ["DropColour", "WithholdExceptionText", "describe", "log_config", "safe_traceback"]
 
 
 def describe(exc: BaseException) -> str:
@@ -71,6 +71,14 @@ class WithholdExceptionText(logging.Filter):
         return True
 
 
+class DropColour(logging.Filter):
+    """uvicorn adds a ``color_message`` with terminal escapes to some records: noise in a JSON line."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        record.__dict__.pop("color_message", None)
+        return True
+
+
 def log_config(level: str = "info") -> dict[str, Any]:
     """The logging set-up of `lytestream serve`: JSON lines on stderr for every logger (ours, uvicorn's,
     APScheduler's) at ``level``, with exception text withheld on every handler. uvicorn's access log is
@@ -80,7 +88,7 @@ def log_config(level: str = "info") -> dict[str, Any]:
     return {
         "version": 1,
         "disable_existing_loggers": False,
-        "filters": {"withhold": withhold},
+        "filters": {"withhold": withhold, "plain": {"()": f"{__name__}.DropColour"}},
         "formatters": {
             "json": {"()": "pythonjsonlogger.json.JsonFormatter",
                      "fmt": "%(asctime)s %(levelname)s %(name)s %(message)s",
@@ -89,7 +97,7 @@ def log_config(level: str = "info") -> dict[str, Any]:
         },
         "handlers": {
             "default": {"formatter": "json", "class": "logging.StreamHandler", "stream": "ext://sys.stderr",
-                        "filters": ["withhold"]},
+                        "filters": ["withhold", "plain"]},
         },
         "loggers": {
             # Their INFO is a line per job run and per readiness probe: noise below debug.

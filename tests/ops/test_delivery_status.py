@@ -62,3 +62,21 @@ def test_each_attempt_and_the_state_change_are_logged(client: TestClient, contex
     assert all(r.subscription == sub["id"] for r in attempts)  # type: ignore[attr-defined]
     changes = [(r.__dict__["from"], r.__dict__["to"]) for r in caplog.records if r.getMessage() == "subscription state"]
     assert changes == [("requested", "active")]
+
+
+def test_a_client_turning_its_subscription_off_is_logged(client: TestClient, hook: Any,  # noqa: F811
+                                                         caplog: pytest.LogCaptureFixture) -> None:
+    import orjson
+
+    from tests.factories import HEADERS
+
+    hook.respond(200)
+    sub = subscribe(client)
+    body = client.get(f"/fhir/Subscription/{sub['id']}").json()
+    with caplog.at_level(logging.INFO, logger="lytestream.subscriptions"):
+        r = client.put(f"/fhir/Subscription/{sub['id']}", content=orjson.dumps({**body, "status": "off"}),
+                       headers=HEADERS)
+    assert r.status_code == 200, r.text
+    changes = [(r.__dict__["from"], r.__dict__["to"], r.__dict__["by"]) for r in caplog.records
+               if r.getMessage() == "subscription state"]
+    assert changes == [("requested", "off", "test-suite")]

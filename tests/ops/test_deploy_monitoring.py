@@ -89,3 +89,11 @@ def test_promtool_accepts_the_alert_rules() -> None:
     result = subprocess.run(["promtool", "check", "rules", str(DEPLOY / "prometheus-alerts.yaml")],
                             capture_output=True, text=True)
     assert result.returncode == 0, result.stdout + result.stderr
+
+
+@pytest.mark.skipif(shutil.which("promtool") is None, reason="promtool (Debian package prometheus) not installed")
+def test_the_alerts_fire_as_their_unit_tests_say() -> None:
+    """deploy/prometheus-alerts.test.yaml: a silent feed, a stuck outbox, a subscription that gave up."""
+    result = subprocess.run(["promtool", "test", "rules", "prometheus-alerts.test.yaml"], cwd=DEPLOY,
+                            capture_output=True, text=True)
+    assert result.returncode == 0, result.stdout + result.stderr

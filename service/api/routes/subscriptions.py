@@ -8,6 +8,7 @@ subscriber needs that scope when it reads the Flags named (``GET Flag/{id}`` che
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 import orjson
@@ -46,6 +47,7 @@ from service.notify.bundles import NotificationEvent, events_response, status_re
 from service.notify.topics import CONTENT_CODES, SubscriptionSpec, parse_subscription
 
 router = APIRouter()
+log = logging.getLogger("lytestream.subscriptions")
 _S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
 _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 
@@ -176,6 +178,9 @@ async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep
                 error=None if status == "requested" else row.error, version_id=row.version_id + 1,
                 last_updated=now))
             _audit(ctx, session, who, "update", sid, row.version_id + 1)
+            if status != row.status:
+                log.info("subscription state", extra={"subscription": sid, "from": row.status, "to": status,
+                                                      "by": who.client})
             return served_subscription(_row(session, sid))
 
     return fhir_response(await run_in_threadpool(run))
