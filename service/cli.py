@@ -114,9 +114,16 @@ def demo(
     file: Annotated[Path | None, typer.Option(help="FHIR NDJSON feed (default: the invented ward)")] = None,
     data_dir: DataDir = None,
     end: Annotated[str | None, typer.Option(help="scenario end, e.g. 2026-03-03T00:00:00Z")] = "2026-03-03T00:00:00Z",
+    serve: Annotated[bool, typer.Option("--serve", help="then run the service on it and open the board: the "
+                                                     "feed is moved in time so that its close is now")] = False,
+    port: Annotated[int, typer.Option(help="TCP port for --serve")] = 8080,
 ) -> None:
     """Replay the invented ward's 48 h feed on an embedded SQLite store and print the flags raised."""
     import tempfile
+
+    if serve:
+        _serve_demo(file, data_dir, end or "2026-03-03T00:00:00Z", port)
+        return
 
     from rich.table import Table
 
@@ -139,6 +146,40 @@ def demo(
     out = Console(width=160)
     out.print(table)
     out.print(f"[dim]{CAUTION}[/dim]")
+
+
+def _serve_demo(file: Path | None, data_dir: Path | None, end: str, port: int) -> None:
+    """`demo --serve`: the invented ward loaded as if it were happening now, the service on it, the board's
+    address and a sign-in token printed. The data directory is kept when given, else removed at exit."""
+    import os
+    import sys
+    import tempfile
+    import webbrowser
+    from datetime import UTC, datetime
+
+    import uvicorn
+
+    from service.demo import DEFAULT_FEED, prepare_live_demo
+    from service.fhir.normalise import parse_datetime
+    from service.fhir.render import CAUTION
+    from service.main import create_app
+
+    now = datetime.now(UTC).replace(second=0, microsecond=0)
+    with tempfile.TemporaryDirectory() as tmp:
+        where = data_dir or Path(tmp)
+        stored, token = prepare_live_demo(file or DEFAULT_FEED, where, parse_datetime(end), now)
+        settings = _settings(None, where).model_copy(update={"base_url": f"http://127.0.0.1:{port}/fhir"})
+        url = f"http://127.0.0.1:{port}/board"
+        console.print(f"The invented ward is loaded ({stored} resources), its close moved to now.")
+        console.print(f"Board: {url} — sign in with any name and this token (client demo-board):")
+        typer.echo(token)  # alone on standard output, like `token create`
+        console.print(f"[dim]{CAUTION}[/dim]")
+        if sys.stdout.isatty() and (os.environ.get("DISPLAY") or sys.platform == "darwin"):
+            try:  # someone at a desktop: open it for them; elsewhere the address above is enough
+                webbrowser.open(f"{url}/login")
+            except webbrowser.Error:
+                pass
+        uvicorn.run(create_app(settings), host="127.0.0.1", port=port, log_level="warning", access_log=False)
 
 
 @db_app.command("upgrade")

@@ -7,7 +7,7 @@ from pathlib import Path
 from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from pydantic import Field, field_validator
+from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from service.auth.settings import AuthSettings
@@ -85,6 +85,13 @@ class Settings(BaseSettings):
         description="a replica's claim on a subscription lapses this long after its last send unless renewed "
                     "(never shorter than the send timeout + 2 s); another replica takes over after it",
     )
+
+    # The board (service/board): a login lasts a shift at most; the open page asks for changes this often.
+    board_session_secret: SecretStr | None = Field(
+        default=None, description="key that signs board session cookies; give every replica the same one "
+                                  "(default: a random key per process, so board logins end when it restarts)")
+    board_session_hours: float = Field(default=8.0, gt=0, le=24, description="how long a board login lasts")
+    board_refresh_seconds: float = Field(default=5.0, ge=1, description="how often an open board asks for changes")
 
     # --- operations: logs, metrics (issue 12, observability) ---
     log_level: Literal["debug", "info", "warning", "error"] = Field(

@@ -108,3 +108,45 @@ def run_demo(feed: Path, data_dir: Path, end: datetime | None = None) -> tuple[l
                               status=f["status"], start=f["period"]["start"], sentence=f["code"]["text"]))
     flags.sort(key=lambda d: (d.patient, d.start, d.rule))
     return flags, len(arrivals), stored
+
+
+# Date-time elements the demo feed uses; shifting them all by one amount keeps every interval (and
+# so every Flag) the same while the scenario's close becomes "now" for a live board.
+_TIMES = frozenset({"effectiveDateTime", "effectiveInstant", "issued", "start", "end"})
+
+
+def shifted(resource: Any, by: timedelta) -> Any:
+    """A copy of ``resource`` with every date-time in it moved by ``by``."""
+    if isinstance(resource, dict):
+        return {k: (_shift_time(v, by) if k in _TIMES and isinstance(v, str) else shifted(v, by))
+                for k, v in resource.items()}
+    if isinstance(resource, list):
+        return [shifted(v, by) for v in resource]
+    return resource
+
+
+def _shift_time(value: str, by: timedelta) -> str:
+    if "T" not in value:
+        return value
+    return (parse_datetime(value) + by).isoformat()
+
+
+DEMO_BOARD_SCOPE = "system/Flag.rus system/Observation.rs system/MedicationAdministration.rs"
+
+
+def prepare_live_demo(feed: Path, data_dir: Path, end: datetime, now: datetime) -> tuple[int, str]:
+    """Load the feed into ``data_dir`` as if its close were ``now``, and mint a token for the board.
+    Returns the number of resources stored and the token."""
+    from service.auth.tokens import mint
+
+    by = now - end
+    arrivals = [(when + by, shifted(resource, by)) for when, resource in read_feed(feed)]
+    clock = FixedClock(arrivals[0][0] if arrivals else now)
+    ctx = build_context(Settings(data_dir=data_dir, scheduler=False), clock=clock)
+    try:
+        stored = replay(ctx, clock, arrivals, now)
+        with ctx.db.session(write=True) as session:
+            token = mint(session, client="demo-board", scope=DEMO_BOARD_SCOPE, now=now)
+    finally:
+        ctx.db.dispose()
+    return stored, token

@@ -7,6 +7,7 @@ import random
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from datetime import timedelta
+from pathlib import Path
 from urllib.parse import urlsplit
 
 import httpx
@@ -15,6 +16,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
 from sqlalchemy.exc import DBAPIError
 from starlette.exceptions import HTTPException
+from starlette.staticfiles import StaticFiles
 
 from service.api.context import AppContext
 from service.api.fhir_io import outcome_response
@@ -22,10 +24,11 @@ from service.api.intake import BodyAborted, BodyIntake
 from service.api.last_resort import LastResort, internal_error
 from service.api.refusals import RefusalAudit, RefusalLimiter
 from service.api.request_log import RequestLog, note_route
-from service.api.routes import audit, conformance, flags, ingest, meta, read, subscriptions, summary
+from service.api.routes import audit, board, conformance, flags, ingest, meta, read, subscriptions, summary
 from service.api.wire import FhirWire
 from service.arrivals import ArrivalReview
 from service.auth.deps import Authenticator, install_auth
+from service.board.session import derive_key
 from service.clock import Clock, SystemClock
 from service.config import Settings
 from service.db.engine import Database, StoreBusy
@@ -40,6 +43,7 @@ from service.policy import load_policy
 __all__ = ["app_from_environment", "build_context", "create_app"]
 
 log = logging.getLogger("lytestream")
+BOARD_STATIC = Path(__file__).resolve().parent / "board" / "static"
 
 
 def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bool = True,
@@ -99,6 +103,12 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app.include_router(audit.router)
     app.include_router(subscriptions.router)
     app.include_router(read.router)
+    # The board: its pages, its own static files (vendored, so no CDN is ever asked), its session key.
+    secret = ctx.settings.board_session_secret
+    app.state.board_key = derive_key(secret.get_secret_value() if secret else None)
+    app.include_router(board.router)
+    app.mount("/board/static", StaticFiles(directory=BOARD_STATIC), name="board-static")
+    board.install_board(app)
 
     @app.exception_handler(RequestRejected)
     async def _rejected(_: Request, exc: RequestRejected) -> Response:

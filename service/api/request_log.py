@@ -63,7 +63,8 @@ class RequestLog:
             await self.app(scope, receive, send_with_id)
         finally:
             elapsed = time.perf_counter() - started
-            route = state.get("route") or "unmatched"
+            # A route's template; a mount (the board's static files) by its prefix; else "unmatched".
+            route = state.get("route") or getattr(scope.get("route"), "path", None) or "unmatched"
             REQUEST_SECONDS.labels(scope["method"], route, f"{status // 100}xx").observe(elapsed)
             principal = state.get("principal")
             line: dict[str, Any] = {"request_id": rid, "method": scope["method"], "route": route, "status": status,

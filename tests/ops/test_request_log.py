@@ -57,3 +57,10 @@ def test_a_path_no_route_serves_is_logged_as_unmatched(client: TestClient, caplo
         assert client.get("/no/such/MRN-LOG-0043").status_code == 404
     assert request_lines(caplog)[-1]["route"] == "unmatched"
     assert "MRN-LOG-0043" not in caplog.text
+
+
+def test_a_static_file_is_logged_by_its_mount_not_its_name(client: TestClient,
+                                                           caplog: pytest.LogCaptureFixture) -> None:
+    with caplog.at_level(logging.INFO, logger="lytestream.request"):
+        assert client.get("/board/static/board.css").status_code == 200
+    assert request_lines(caplog)[-1]["route"] == "/board/static"

@@ -1,0 +1,141 @@
+"""Reads for the board: the active Flags with what the team needs beside each. Keyword-only, session first.
+
+A fixed number of queries whatever the number of Flags (one per table), so the board costs the same
+with 5 Flags or 200 (bench/board_benchmark.py measures it).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from datetime import datetime
+from typing import Any
+
+import orjson
+from sqlalchemy import func, select, tuple_
+from sqlmodel import Session
+
+from service.board.views import AckFacts, FlagFacts, LatestValue
+from service.db.tables import Escalation, FhirVersion, FlagAck, FlagRecord, ObservationRecord, PatientAlias
+from service.fhir.normalise import parse_datetime
+
+__all__ = ["active_flag_facts", "flag_facts", "patient_identifiers"]
+
+_FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
+_ACK = FlagAck.__table__  # type: ignore[attr-defined]
+_ESC = Escalation.__table__  # type: ignore[attr-defined]
+_V = FhirVersion.__table__  # type: ignore[attr-defined]
+_OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
+_ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
+
+
+def active_flag_facts(*, session: Session) -> list[FlagFacts]:
+    rows = session.execute(select(_FLAG).where(_FLAG.c.status == "active")).all()
+    return _facts(session, rows)
+
+
+def flag_facts(*, session: Session, flag_id: str) -> tuple[FlagFacts, str, list[str], str] | None:
+    """One Flag (any status): its facts, its patient key, its evidence and its status."""
+    row = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).first()
+    if row is None:
+        return None
+    return _facts(session, [row])[0], row.patient_key, orjson.loads(row.evidence), row.status
+
+
+def patient_identifiers(*, session: Session, patient_keys: Iterable[str]) -> dict[str, list[str]]:
+    """Every name the feed used for each patient: identifier values first (as sent), then references."""
+    keys = sorted(set(patient_keys))
+    found: dict[str, tuple[list[str], list[str]]] = {k: ([], []) for k in keys}
+    for i in range(0, len(keys), 500):
+        for alias, key in session.execute(select(_ALIAS.c.alias, _ALIAS.c.patient_key)
+                                          .where(_ALIAS.c.patient_key.in_(keys[i:i + 500]))
+                                          .order_by(_ALIAS.c.alias)):
+            kind, _, rest = alias.partition(":")
+            if kind == "id":
+                found[key][0].append(rest.rpartition("|")[2] if "|" in rest else rest)
+            else:
+                found[key][1].append(rest)
+    return {k: ids + refs for k, (ids, refs) in found.items()}
+
+
+def _facts(session: Session, rows: Sequence[Any]) -> list[FlagFacts]:
+    if not rows:
+        return []
+    ids = [r.id for r in rows]
+    names = patient_identifiers(session=session, patient_keys=[r.patient_key for r in rows])
+    acks = _latest_acks(session, ids)
+    escalations = dict(session.execute(select(_ESC.c.flag_id, func.count()).where(_ESC.c.flag_id.in_(ids))
+                                       .group_by(_ESC.c.flag_id)).all())
+    displays = _rule_displays(session, [(r.id, r.version_id) for r in rows])
+    evidence = {r.id: orjson.loads(r.evidence) for r in rows}
+    latest = _latest_values(session, evidence)
+    facts = []
+    for r in rows:
+        ack = acks.get(r.id)
+        facts.append(FlagFacts(
+            id=r.id, version_id=r.version_id, rule=r.rule,
+            rule_display=displays.get(r.id) or r.rule.replace("-", " ").capitalize(),
+            priority=r.priority, sentence=r.sentence, raised_at=r.raised_at,
+            identifiers=names.get(r.patient_key, []), encounter=r.encounter,
+            latest=latest.get(r.id),
+            ack=None if ack is None else AckFacts(by=ack[0], at=ack[1], note=ack[2],
+                                                  covers=ack[1] >= r.priority_since),
+            escalations=int(escalations.get(r.id, 0)), last_updated=r.last_updated,
+        ))
+    return facts
+
+
+def _latest_acks(session: Session, flag_ids: list[str]) -> dict[str, tuple[str, datetime, str | None]]:
+    newest: dict[str, tuple[str, datetime, str | None]] = {}
+    for fid, client, at, note in session.execute(
+            select(_ACK.c.flag_id, _ACK.c.client, _ACK.c.acknowledged_at, _ACK.c.note)
+            .where(_ACK.c.flag_id.in_(flag_ids)).order_by(_ACK.c.acknowledged_at, _ACK.c.id)):
+        newest[fid] = (client, at, note)
+    return newest
+
+
+def _rule_displays(session: Session, versions: list[tuple[str, int]]) -> dict[str, str]:
+    """The rule's display as the Flag version carries it (code.coding[0].display), where it has one."""
+    out: dict[str, str] = {}
+    for fid, resource in session.execute(
+            select(_V.c.id, _V.c.resource).where(_V.c.resource_type == "Flag",
+                                                 tuple_(_V.c.id, _V.c.version_id).in_(versions))):
+        coding = (orjson.loads(resource).get("code") or {}).get("coding") or [{}]
+        if coding[0].get("display"):
+            out[fid] = coding[0]["display"]
+    return out
+
+
+def _latest_values(session: Session, evidence: dict[str, list[str]]) -> dict[str, LatestValue]:
+    """Per Flag, its newest cited result as the lab sent it (value and unit of that exact version)."""
+    wanted: dict[tuple[str, int], list[str]] = {}
+    for fid, refs in evidence.items():
+        for ref in refs:
+            parts = ref.split("/")
+            if parts[0] == "Observation" and len(parts) == 4 and parts[3].isdigit():
+                wanted.setdefault((parts[1], int(parts[3])), []).append(fid)
+    if not wanted:
+        return {}
+    analytes = dict(session.execute(select(_OBS.c.id, _OBS.c.analyte)
+                                    .where(_OBS.c.id.in_(sorted({k[0] for k in wanted})))).all())
+    best: dict[str, LatestValue] = {}
+    for oid, resource in session.execute(
+            select(_V.c.id, _V.c.resource).where(_V.c.resource_type == "Observation",
+                                                 tuple_(_V.c.id, _V.c.version_id).in_(list(wanted)))):
+        obs = orjson.loads(resource)
+        quantity = obs.get("valueQuantity") or {}
+        when = obs.get("effectiveDateTime") or obs.get("effectiveInstant") or (obs.get("effectivePeriod") or {}).get(
+            "start")
+        if "value" not in quantity or not when:
+            continue
+        value = LatestValue(analyte=str(analytes.get(oid, "result")), value=f"{quantity.get('comparator', '')}{_number(quantity['value'])}",
+                            unit=str(quantity.get("unit") or quantity.get("code") or ""),
+                            collected=parse_datetime(when))
+        for fid in wanted.get((oid, int(obs["meta"]["versionId"])), []):
+            if fid not in best or value.collected > best[fid].collected:
+                best[fid] = value
+    return best
+
+
+def _number(value: object) -> str:
+    text = repr(value) if isinstance(value, float) else str(value)
+    return text[:-2] if text.endswith(".0") else text
