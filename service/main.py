@@ -16,6 +16,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
 from sqlalchemy.exc import DBAPIError
 from starlette.exceptions import HTTPException
+from starlette.routing import Mount
 from starlette.staticfiles import StaticFiles
 
 from service.api.context import AppContext
@@ -164,5 +165,5 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     # not raised on to the server (which would drop the kept-alive connection).
     app.add_middleware(LastResort)
     # Outside even that: the request log sees the status the client got, 500s included.
-    app.add_middleware(RequestLog)
+    app.add_middleware(RequestLog, mounts=tuple(r.path for r in app.routes if isinstance(r, Mount)))
     return app

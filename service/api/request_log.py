@@ -37,8 +37,12 @@ def note_route(request: Request) -> None:
 
 
 class RequestLog:
-    def __init__(self, app: ASGIApp) -> None:
+    """``mounts``: path prefixes of mounted apps (the board's static files), named by their prefix, since no
+    route template is noted for them."""
+
+    def __init__(self, app: ASGIApp, mounts: tuple[str, ...] = ()) -> None:
         self.app = app
+        self.mounts = tuple(m.rstrip("/") + "/" for m in mounts)
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -63,8 +67,7 @@ class RequestLog:
             await self.app(scope, receive, send_with_id)
         finally:
             elapsed = time.perf_counter() - started
-            # A route's template; a mount (the board's static files) by its prefix; else "unmatched".
-            route = state.get("route") or getattr(scope.get("route"), "path", None) or "unmatched"
+            route = state.get("route") or self._mount(scope["path"]) or "unmatched"
             REQUEST_SECONDS.labels(scope["method"], route, f"{status // 100}xx").observe(elapsed)
             principal = state.get("principal")
             line: dict[str, Any] = {"request_id": rid, "method": scope["method"], "route": route, "status": status,
@@ -74,3 +77,6 @@ class RequestLog:
                 if key in state:
                     line[key] = state[key]
             log.log(logging.WARNING if status >= 500 else logging.INFO, "request", extra=line)
+
+    def _mount(self, path: str) -> str | None:
+        return next((m.rstrip("/") for m in self.mounts if path.startswith(m)), None)
