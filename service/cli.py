@@ -54,6 +54,7 @@ def serve(
 
     import uvicorn
 
+    from service.auth.settings import check_startable, running_under_pytest
     from service.policy import PolicyError, load_policy
 
     settings = _settings(database_url, data_dir)
@@ -65,6 +66,7 @@ def serve(
         load_policy(settings.policy_file, profile=settings.policy_profile)
     except PolicyError as exc:
         raise policy_fault(exc, settings.policy_file, settings.policy_profile) from exc
+    check_startable(settings.auth, testing=running_under_pytest())
     # Migrate once here, before any worker starts; the workers read the same settings from the environment.
     _migrate(settings)
     os.environ["LYTESTREAM_DATABASE_URL"] = settings.resolved_database_url

@@ -62,6 +62,10 @@ def test_an_unreachable_database_names_it_without_its_password(tmp_path: Path) -
     assert "hunter2" not in line
 
 
+def test_access_control_switched_off_is_refused_before_the_banner(tmp_path: Path) -> None:
+    assert_one_clear_line(serve(tmp_path, LYTESTREAM_AUTH__DISABLED="true"), "auth.disabled", "LYTESTREAM_AUTH__")
+
+
 @pytest.mark.parametrize("command", [["db", "upgrade"], ["demo"], ["token", "create", "--client", "ops", "--scope", "system/Flag.rs"]])
 def test_other_commands_refuse_a_bad_setting_the_same_way(command: list[str], tmp_path: Path) -> None:
     assert_one_clear_line(run(*command, LYTESTREAM_LOG_LEVEL="chatty", LYTESTREAM_DATA_DIR=str(tmp_path)),
