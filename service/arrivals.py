@@ -21,6 +21,8 @@ from __future__ import annotations
 import logging
 from collections.abc import Mapping
 from datetime import datetime, timedelta
+from functools import partial
+from zoneinfo import ZoneInfo
 
 from sqlmodel import Session
 
@@ -31,7 +33,8 @@ from service.domain.arrival import Event, duration_words, note_late, window_befo
 from service.domain.coverage import unread_exposure, unread_result
 from service.domain.findings import Finding, Rule
 from service.domain.rules import evaluate
-from service.domain.values import InsulinExposure, LabResult, ResultStatus
+from service.domain.values import InsulinExposure, LabResult, ResultStatus, Timeline
+from service.domain.wording import narrate
 from service.errors import Issue
 from service.notify.bundles import interaction_for
 from service.notify.topics import FLAG_CHANGED
@@ -60,10 +63,11 @@ class _Late:
 class ArrivalReview:
     """The per-entry notes on stored results, and the own-window evaluation of late ones."""
 
-    def __init__(self, *, policy: Policy, lookback: timedelta) -> None:
+    def __init__(self, *, policy: Policy, lookback: timedelta, lab_zone: ZoneInfo | None = None) -> None:
         self.policy = policy
         self.policy_hash = policy_hash(policy)
         self.lookback = lookback
+        self.lab_zone = lab_zone
 
     def __call__(self, session: Session, stored: Mapping[int, Stored], now: datetime) -> dict[int, list[Issue]]:
         """Notes by entry slot for the versions in ``stored`` (slot → value), all written at ``now``."""
@@ -118,7 +122,10 @@ class ArrivalReview:
         for anchor in anchors:
             ends: Event = "collection" if any(x.anchor == anchor and x.event == "collection" for x in items) \
                 else "insulin-end"
-            for finding in evaluate(window_before(full, anchor, self.lookback), self.policy, anchor):
+            window = window_before(full, anchor, self.lookback)
+            judged = evaluate(window, self.policy, anchor)
+            told = narrate(judged, window, partial(_evaluate_at, policy=self.policy, now=anchor), self.lab_zone)
+            for finding in told:
                 cited = [by_reference[ref] for ref in finding.evidence if ref in by_reference]
                 if cited:
                     # The newest cited result speaks for the finding; an administration only when no
@@ -132,3 +139,7 @@ class ArrivalReview:
         return write_late_flags(session=session, findings=[found[k] for k in sorted(found)],
                                 subject_of=subjects(session=session, patient_keys=[patient]),
                                 policy_hash=self.policy_hash, now=now)
+
+
+def _evaluate_at(timeline: Timeline, *, policy: Policy, now: datetime) -> list[Finding]:
+    return evaluate(timeline, policy, now)

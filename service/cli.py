@@ -23,6 +23,9 @@ app.add_typer(token_app, name="token")
 app.add_typer(audit_app, name="audit")
 console = Console(stderr=True)
 
+# Addresses that mean "every interface": serving on them needs the public base URL spelled out.
+_ALL_INTERFACES = frozenset({"0.0.0.0", "::", "[::]"})
+
 DatabaseUrl = Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
 DataDir = Annotated[Path | None, typer.Option(help="where the embedded SQLite database lives")]
 
@@ -61,6 +64,12 @@ def serve(
     if log_level is not None:
         settings = settings.model_copy(update={"log_level": log_level})
     if "base_url" not in settings.model_fields_set:
+        if host in _ALL_INTERFACES:
+            # Behind a proxy or in a container the bind address says nothing of how clients reach us, and
+            # a guessed base URL would go into every Location header and Bundle link.
+            typer.echo(f"refusing to listen on {host} without LYTESTREAM_BASE_URL: set it to the public FHIR "
+                       "base URL clients use, e.g. https://alerts.example.org/fhir", err=True)
+            raise typer.Exit(code=2)
         settings = settings.model_copy(update={"base_url": f"http://{host}:{port}/fhir"})
     try:  # here, once, before the banner: a worker that fails on it would only say so in its log
         load_policy(settings.policy_file, profile=settings.policy_profile)
@@ -190,6 +199,73 @@ def db_upgrade(database_url: DatabaseUrl = None, data_dir: DataDir = None) -> No
     settings = _settings(database_url, data_dir)
     _migrate(settings)
     console.print(f"schema up to date at {_safe_url(settings)}")
+
+
+@db_app.command("backup")
+def db_backup(file: Annotated[Path, typer.Argument(help="new file to write the backup to")],
+              database_url: DatabaseUrl = None, data_dir: DataDir = None) -> None:
+    """Copy the SQLite store to FILE while the service runs (one consistent moment); PostgreSQL: pg_dump."""
+    from service.backup import BackupError, backup_sqlite, pg_dump_hint, sqlite_path
+
+    settings = _settings(database_url, data_dir)
+    try:
+        if sqlite_path(settings.resolved_database_url) is None:
+            typer.echo("a PostgreSQL store is backed up with its own tools, e.g.\n  "
+                       + pg_dump_hint(settings.resolved_database_url, file), err=True)
+            raise typer.Exit(code=2)
+        info = backup_sqlite(settings.resolved_database_url, file)
+    except BackupError as exc:
+        typer.echo(f"backup refused: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    typer.echo(f"backup written to {file}: migration {info.revision}, {info.rows} rows")
+
+
+@db_app.command("restore")
+def db_restore(file: Annotated[Path, typer.Argument(help="a backup made by `lytestream db backup`")],
+               force: Annotated[bool, typer.Option(help="replace a store that holds data")] = False,
+               database_url: DatabaseUrl = None, data_dir: DataDir = None) -> None:
+    """Replace the (stopped) SQLite store with FILE, then bring it to the newest migration."""
+    from service.backup import BackupError, restore_sqlite, sqlite_path
+    from service.db.engine import Database
+
+    settings = _settings(database_url, data_dir)
+    try:
+        if sqlite_path(settings.resolved_database_url) is None:
+            typer.echo("a PostgreSQL store is restored with its own tools: pg_restore --clean --dbname URL FILE",
+                       err=True)
+            raise typer.Exit(code=2)
+        info = restore_sqlite(file, settings.resolved_database_url, force=force)
+    except BackupError as exc:
+        typer.echo(f"restore refused: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    db = Database(settings.resolved_database_url)
+    db.create_schema()
+    db.dispose()
+    typer.echo(f"restored {file} (migration {info.revision}, {info.rows} rows) to {_safe_url(settings)}; "
+               "schema up to date")
+
+
+@db_app.command("purge")
+def db_purge(days: Annotated[float | None, typer.Option(min=0.001, help="retention in days (default: "
+                                                          "LYTESTREAM_RETENTION_DAYS)")] = None,
+             database_url: DatabaseUrl = None, data_dir: DataDir = None) -> None:
+    """Delete raw requests and AuditEvents older than the retention period now (the scheduler does it hourly)."""
+    from service.clock import SystemClock
+    from service.db.engine import Database
+    from service.retention import purge_expired
+
+    settings = _settings(database_url, data_dir)
+    keep = days if days is not None else settings.retention_days
+    if keep is None:
+        typer.echo("no retention period: pass --days or set LYTESTREAM_RETENTION_DAYS", err=True)
+        raise typer.Exit(code=2)
+    db = Database(settings.resolved_database_url)
+    try:
+        purged = purge_expired(db, days=keep, now=SystemClock().now(), base_url=settings.base_url)
+    finally:
+        db.dispose()
+    typer.echo(f"purged {purged.received_requests} raw request(s) and {purged.audit_events} AuditEvent(s) "
+               f"recorded before {purged.before.isoformat()}")
 
 
 PolicyFile = Annotated[Path | None, typer.Argument(help="policy TOML (default: the built-in policy)")]

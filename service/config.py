@@ -85,6 +85,11 @@ class Settings(BaseSettings):
         description="a replica's claim on a subscription lapses this long after its last send unless renewed "
                     "(never shorter than the send timeout + 2 s); another replica takes over after it",
     )
+    # Operations (backup and retention): deploy/, README "Running in production".
+    retention_days: float | None = Field(
+        default=None, gt=0,
+        description="raw request bytes and AuditEvents older than this many days are purged (hourly, in batches, "
+                    "the purge itself audited); unset: kept for ever")
 
     # The board (service/board): a login lasts a shift at most; the open page asks for changes this often.
     board_session_secret: SecretStr | None = Field(

@@ -10,6 +10,7 @@ import time
 from collections import Counter
 from collections.abc import Iterable, Sequence
 from datetime import datetime, timedelta
+from zoneinfo import ZoneInfo
 
 import orjson
 from sqlmodel import Session
@@ -19,19 +20,22 @@ from service.db.alerts import paged_of, record_page
 from service.db.engine import Database
 from service.db.flags import (
     FlagWrite,
+    drop_acknowledgement,
     open_flags,
     patients_to_recheck,
     subjects,
     write_changes,
+    write_event_version,
 )
-from service.db.subscriptions import enqueue_events, flag_version
+from service.db.subscriptions import enqueue_events
 from service.db.timeline import load_timelines
 from service.domain.alerting import Change, Paged, measure_of, page_reason
-from service.domain.arrival import note_arrival_delay
+from service.domain.arrival import duration_words, note_arrival_delay
 from service.domain.findings import Finding, Priority
 from service.domain.flags import FlagChange, reconcile
 from service.domain.rules import evaluate
 from service.domain.values import Timeline
+from service.domain.wording import narrate
 from service.notify.bundles import interaction_for
 from service.notify.topics import FLAG_ALERT, FLAG_CHANGED, FLAG_ESCALATED
 from service.ops.metrics import ESCALATIONS, FLAG_CHANGES, after_commit, change_word
@@ -45,10 +49,11 @@ log = logging.getLogger("lytestream.evaluation")
 class Evaluator:
     """Brings the Flags of some patients in line with their data, the policy and ``now``."""
 
-    def __init__(self, *, policy: Policy, lookback: timedelta) -> None:
+    def __init__(self, *, policy: Policy, lookback: timedelta, lab_zone: ZoneInfo | None = None) -> None:
         self.policy = policy
         self.policy_hash = policy_hash(policy)
         self.lookback = lookback
+        self.lab_zone = lab_zone  # collection times are said in it (UTC, said so, when None)
 
     def __call__(self, session: Session, patient_keys: Iterable[str], now: datetime) -> list[FlagWrite]:
         """Re-evaluate these patients (their locks must be held) and write any Flag changes; one log line."""
@@ -65,7 +70,10 @@ class Evaluator:
         opened = open_flags(session=session, patient_keys=keys)
         changes: list[FlagChange] = []
         for key in keys:
-            findings = self._noted(evaluate(timelines[key], self.policy, now), timelines[key])
+            timeline = timelines[key]
+            told = narrate(evaluate(timeline, self.policy, now), timeline,
+                           lambda t: evaluate(t, self.policy, now), self.lab_zone)
+            findings = self._noted(told, timeline)
             changes += reconcile(findings, opened.get(key, []), timelines[key].withdrawn, now)
         if not changes:
             return []
@@ -107,6 +115,8 @@ class Evaluator:
             sent = Paged(priority, measure_of(row.rule, numbers))
             record_page(session=session, flag_id=w.id, paged=sent, reopens_escalation=reason.reopens_escalation,
                         now=now)
+            if reason.reopens_escalation:  # an older acknowledgement no longer covers this version
+                drop_acknowledgement(session=session, written=w)
             last[w.id] = sent
             paging.append(w)
         return paging
@@ -134,12 +144,18 @@ class Evaluator:
                 db.lock_patients(session, [item.patient_key])
                 if not claim_escalation(session=session, due=item, after=after, now=now):
                     continue  # another replica took this round, or the Flag changed since it was found
-                flag = flag_version(session=session, flag_id=item.flag_id, version=item.version_id)
-                if flag is not None:
-                    queued = enqueue_events(session=session, topic=FLAG_ESCALATED, now=now,
-                                            flags=[(item.flag_id, item.version_id, "update", flag)])
-                    after_commit(session, lambda n=queued: ESCALATIONS.inc(n))  # type: ignore[misc]
-                    sent += queued
+                # The escalation is a Flag version of its own, so the Flag says it was escalated and
+                # for how long nobody acknowledged it; the rule's columns are untouched (no difference
+                # for the next evaluation to undo).
+                key = item.patient_key
+                subject = subjects(session=session, patient_keys=[key]).get(key, {})
+                lead = f"Escalation {item.round}: unacknowledged for {duration_words(now - item.priority_since)}. "
+                w = write_event_version(session=session, flag_id=item.flag_id, subject=subject, lead=lead, now=now)
+                event = [(w.id, w.version_id, interaction_for(w.kind), w.flag)]
+                enqueue_events(session=session, topic=FLAG_CHANGED, now=now, flags=event)
+                queued = enqueue_events(session=session, topic=FLAG_ESCALATED, now=now, flags=event)
+                after_commit(session, lambda n=queued: ESCALATIONS.inc(n))  # type: ignore[misc]
+                sent += queued
         if due:
             log.info("escalation", extra={"due": len(due), "notifications": sent})
         return sent

@@ -395,7 +395,7 @@ def _stored_value(p: _Prepared, w: Written, row: Mapping[str, Any], patient_key:
             specimen=o.entry.specimen, loinc=o.entry.code, status=ResultStatus(o.status), effective=o.effective,
             value=o.value, comparator=o.comparator, calculated=o.entry.calculated, issued=o.issued,
             encounter=o.encounter, key=f"{o.identifier[0]}|{o.identifier[1]}", quality=row.get("quality"),
-            arrived=now,
+            arrived=now, sent_value=o.sent_value, sent_unit=o.sent_unit,
         )
     x = p.insulin
     assert x is not None
@@ -468,6 +468,8 @@ def _observation_pending(p: _Prepared, patient_key: str) -> Pending:
             "encounter": o.encounter,
             "replaces": o.replaces,
             "quality": o.quality,
+            "sent_value": o.sent_value,
+            "sent_unit": o.sent_unit,
         },
     )
 

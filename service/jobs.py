@@ -49,12 +49,25 @@ def escalate_flags(ctx: AppContext) -> int:
     return ctx.evaluator.escalate(ctx.db, ctx.clock.now())
 
 
+def purge_retention(ctx: AppContext) -> int:
+    """Purge raw requests and AuditEvents past the retention period, when one is set."""
+    from service.retention import purge_expired
+
+    if ctx.settings.retention_days is None:
+        return 0
+    return purge_expired(ctx.db, days=ctx.settings.retention_days, now=ctx.clock.now(),
+                         base_url=ctx.settings.base_url).total
+
+
 JOBS: dict[str, Callable[[AppContext], int]] = {
     "recheck-flags": recheck_flags,
     "escalate-flags": escalate_flags,
     "queue-heartbeats": queue_heartbeats,
     "deliver-outbox": deliver_outbox,
+    "purge-retention": purge_retention,
 }
+# Retention is counted in days: an hourly pass keeps each purge small.
+_PURGE_SECONDS = 3600.0
 
 
 def run_job(ctx: AppContext, name: str) -> int:
@@ -74,6 +87,8 @@ def run_job(ctx: AppContext, name: str) -> int:
 
 
 def _interval(ctx: AppContext, name: str) -> float:
+    if name == "purge-retention":
+        return _PURGE_SECONDS
     return ctx.settings.deliver_seconds if name == "deliver-outbox" else ctx.settings.recheck_seconds
 
 

@@ -9,6 +9,7 @@ from contextlib import asynccontextmanager
 from datetime import timedelta
 from pathlib import Path
 from urllib.parse import urlsplit
+from zoneinfo import ZoneInfo
 
 import httpx
 from fastapi import Depends, FastAPI, Request
@@ -55,10 +56,12 @@ def build_context(settings: Settings, *, clock: Clock | None = None, migrate: bo
     if migrate:
         db.create_schema()
     clock = clock or SystemClock()
-    evaluator = Evaluator(policy=policy, lookback=timedelta(hours=settings.lookback_hours))
+    lab_zone = ZoneInfo(settings.lab_timezone) if settings.lab_timezone else None
+    evaluator = Evaluator(policy=policy, lookback=timedelta(hours=settings.lookback_hours), lab_zone=lab_zone)
     ingestor = Ingestor(db=db, settings=settings, insulin=policy.insulin.codes_matcher(), clock=clock,
                         on_change=evaluator,
-                        on_stored=ArrivalReview(policy=policy, lookback=timedelta(hours=settings.lookback_hours)),
+                        on_stored=ArrivalReview(policy=policy, lookback=timedelta(hours=settings.lookback_hours),
+                                                lab_zone=lab_zone),
                         future_tolerance=timedelta(minutes=policy.timing.future_tolerance_minutes))
     dispatcher = Dispatcher(db=db, settings=settings, clock=clock, client=http or httpx.Client(),
                             rng=random.Random())

@@ -33,6 +33,7 @@ from sqlalchemy import create_engine, text
 
 from tests.factories import HEADERS, bundle, dumps, observation
 from tests.servers import clean_env, free_port, start_server
+from tests.stores import flag_signatures
 
 pytestmark = [pytest.mark.slow, pytest.mark.postgres]
 
@@ -287,3 +288,187 @@ def test_a_killed_replicas_pages_continue_within_the_bound_and_resume_promptly_a
     assert len(duplicated) <= 1 and all(sid in orphaned and max(counts[sid].values()) == 2 for sid, _ in duplicated)
     assert max(takeover.values()) <= BOUND_S
     assert max(resumed.values()) <= BOUND_S
+
+
+# --- Scale-out proof: two replicas behind a round-robin client against one replica, same feed ------
+#
+# The feed: FEED_PATIENTS patients, FEED_WAVES sodium results each, five minutes apart, sent wave by
+# wave as transactions of conditional updates (PUT by identifier), so a bundle resent after a lost
+# answer changes nothing. Values cycle through 116-131 mmol/L: 116-120 are at or below the default
+# critical low of 120 mmol/L (RCPath G158 2017), and steps of up to 15 mmol/L in minutes exceed the
+# default limit of 10 mmol/L in 24 h (Verbalis JG et al., Am J Med 2013;126:S1-42), so Flags of both
+# kinds are raised, closed and raised again. Every result arrives within the hour of its collection,
+# so no sentence carries a late-arrival note that would differ with the moment of the run.
+
+FEED_PATIENTS = 80
+FEED_WAVES = 5
+FEED_PER_BUNDLE = 20
+FEED_VALUES = (128, 116, 121, 131, 119, 124, 130, 117)
+
+
+def feed_bundles(start: float) -> list[tuple[list[str], bytes]]:
+    """The feed, in sending order: (identifiers, transaction body) per bundle; the first wave
+    collected at ``start`` (epoch seconds), the last 20 minutes later."""
+    out = []
+    for wave in range(FEED_WAVES):
+        for first in range(0, FEED_PATIENTS, FEED_PER_BUNDLE):
+            obs = []
+            for j in range(first, first + FEED_PER_BUNDLE):
+                when = time.strftime("%Y-%m-%dT%H:%M:%S+00:00", time.gmtime(start + wave * 300 + j % 7))
+                obs.append(observation(f"sc{j}-{wave}", value=FEED_VALUES[(3 * j + wave) % len(FEED_VALUES)],
+                                       patient=f"Patient/sc{j}", effective=when))
+            out.append(([o["identifier"][0]["value"] for o in obs],
+                        dumps(bundle("transaction", *obs, method="PUT"))))
+    return out
+
+
+@dataclass
+class RoundRobin:
+    """A client that sends each request to the next replica, and to the next again if one is gone."""
+
+    ports: list[int]
+    headers: dict[str, str]
+    turn: int = 0
+    gone: set[int] = field(default_factory=set)
+    unanswered: int = 0  # requests that got no answer and were sent again
+
+    def post(self, body: bytes) -> int:
+        for _ in range(2 * len(self.ports)):
+            port = self.ports[self.turn % len(self.ports)]
+            self.turn += 1
+            if port in self.gone:
+                continue
+            try:
+                return httpx.post(f"http://127.0.0.1:{port}/fhir", content=body, headers=self.headers,
+                                  timeout=60).status_code
+            except httpx.TransportError:
+                self.unanswered += 1
+                self.gone.add(port)  # no answer: not acknowledged, so it is sent again, elsewhere
+        raise AssertionError("no replica answered")
+
+
+@dataclass
+class FeedRun:
+    start: float  # the feed's first collection time: every run of the drill sends the same feed
+    flags: list[Any]
+    events: dict[str, Counter[int]]  # per subscription: event number -> arrivals
+    queued: int
+    acknowledged: set[str]
+    readable: set[str]
+    seconds: float
+    unanswered: int
+
+
+def _readable(port: int, headers: dict[str, str]) -> set[str]:
+    """Every Observation identifier the replica serves, page by page through the search API."""
+    found: set[str] = set()
+    url: str | None = f"http://127.0.0.1:{port}/fhir/Observation?_count=500"
+    while url:
+        page = httpx.get(url, headers=headers, timeout=30).json()
+        found |= {e["resource"]["identifier"][0]["value"] for e in page.get("entry", [])}
+        url = next((link["url"] for link in page.get("link", []) if link["relation"] == "next"), None)
+    return found
+
+
+def _migrate_and_mint(database_url: str) -> str:
+    """The schema and a token, in this process (what `db upgrade` and `token create` do, without the
+    start-up of two more interpreters per run)."""
+    from datetime import UTC, datetime
+
+    from service.auth.tokens import mint
+    from service.db.engine import Database
+
+    db = Database(database_url)
+    try:
+        db.create_schema()
+        with db.session(write=True) as session:
+            return mint(session, client="drill", scope="system/*.cruds", now=datetime.now(UTC))
+    finally:
+        db.dispose()
+
+
+def run_feed(database_url: str, replicas: int, start: float, *, kill_midway: bool = False) -> FeedRun:
+    """The feed through ``replicas`` servers on one database; with ``kill_midway``, the second replica
+    gets SIGKILL while the middle bundle is on its way to it."""
+    started = time.monotonic()
+    extra = {"LYTESTREAM_DELIVERY_TIMEOUT_SECONDS": "2", "LYTESTREAM_DELIVERY_LEASE_SECONDS": "4"}
+    headers = {**HEADERS, "Authorization": f"Bearer {_migrate_and_mint(database_url)}"}
+    receiver = CountingReceiver()
+    receiver.up()
+    ports = [free_port() for _ in range(replicas)]
+    with ThreadPoolExecutor(max_workers=replicas) as pool:
+        procs = list(pool.map(lambda p: start_server(p, env=env(database_url, **extra)), ports))
+    try:
+        drill = Drill(database_url, receiver, ports, procs, headers)
+        drill.subscribe(1)
+        client = RoundRobin(ports, headers)
+        acknowledged: set[str] = set()
+        bundles = feed_bundles(start)
+        middle = len(bundles) // 2 | 1  # odd: round robin hands it to the second replica
+        for i, (idents, body) in enumerate(bundles):
+            if kill_midway and i == middle:
+                threading.Timer(0.005, procs[1].kill).start()
+            status = client.post(body)
+            assert status == 200, f"bundle {i}: {status}"
+            acknowledged.update(idents)
+        if kill_midway:
+            procs[1].wait(timeout=10)
+            assert client.gone == {ports[1]}, "the killed replica was never found gone"
+        expected = drill.queued()
+        drill.wait_delivered(expected, within_s=60)
+        time.sleep(1.5)  # a duplicate, if any, would arrive now
+        survivor = ports[0]
+        return FeedRun(start=start, flags=flag_signatures(database_url), events=receiver.counts(), queued=sum(expected.values()),
+                       acknowledged=acknowledged, readable=_readable(survivor, headers),
+                       seconds=time.monotonic() - started, unanswered=client.unanswered)
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.terminate()
+                p.wait(timeout=20)
+        receiver.down()
+
+
+@pytest.fixture(scope="module")
+def one_replica() -> Iterator[FeedRun]:
+    from tests.conftest import _postgres_schema
+
+    # Collected from half an hour ago: the later runs, minutes after this one, still see every result
+    # arrive within the hour, so no sentence gains a late note that would differ between runs.
+    start = time.time() - 30 * 60
+    for url in _postgres_schema():
+        yield run_feed(url, replicas=1, start=start)
+
+
+def _gapless_once(run: FeedRun) -> bool:
+    (per,) = run.events.values()
+    return sorted(per) == list(range(1, run.queued + 1)) and set(per.values()) == {1}
+
+
+@pytest.mark.timeout(240)
+def test_two_replicas_behind_round_robin_raise_the_flags_of_one_and_notify_each_change_once(
+    one_replica: FeedRun, postgres_url: str,
+) -> None:
+    two = run_feed(postgres_url, replicas=2, start=one_replica.start)
+    print(f"\nscale-out: one replica {one_replica.seconds:.1f} s, two {two.seconds:.1f} s; "
+          f"{len(two.flags)} Flags, {two.queued} notifications")
+    assert {f[1] for f in one_replica.flags} >= {"sodium-critical-low", "sodium-rise-too-fast"}
+    assert {f[2] for f in one_replica.flags} >= {"active", "inactive"}
+    assert two.flags == one_replica.flags
+    assert two.queued == one_replica.queued
+    assert _gapless_once(one_replica) and _gapless_once(two)
+
+
+@pytest.mark.timeout(240)
+def test_a_replica_killed_mid_feed_loses_no_acknowledged_result(one_replica: FeedRun, postgres_url: str) -> None:
+    run = run_feed(postgres_url, replicas=2, start=one_replica.start, kill_midway=True)
+    (per,) = run.events.values()
+    print(f"\nkill mid-feed: {len(run.acknowledged)} results acknowledged, {len(run.readable)} readable, "
+          f"{run.unanswered} request(s) unanswered and sent again, {run.queued} notifications in {run.seconds:.1f} s")
+    assert len(run.acknowledged) == FEED_PATIENTS * FEED_WAVES
+    assert run.acknowledged <= run.readable
+    # The resent bundle changed nothing: the same Flags as one replica that was never interrupted.
+    assert run.flags == one_replica.flags
+    assert sorted(per) == list(range(1, run.queued + 1)), "a notification is missing"
+    # At-least-once across a crash: only the send the victim had out when it died may come twice.
+    assert sum(c - 1 for c in per.values()) <= 1

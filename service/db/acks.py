@@ -14,22 +14,50 @@ from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlmodel import Session
 
 from service.db.tables import Escalation, FlagAck, FlagRecord
+from service.fhir.flag_render import AckView
 
-__all__ = ["DueEscalation", "acknowledge", "claim_escalation", "due_escalations", "first_acks"]
+__all__ = ["DueEscalation", "acknowledge", "claim_escalation", "covering_acks", "due_escalations",
+           "first_acks", "record_ack"]
 
 _ACK = FlagAck.__table__  # type: ignore[attr-defined]
 _ESC = Escalation.__table__  # type: ignore[attr-defined]
 _FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
 
 
+def record_ack(*, session: Session, flag_id: str, flag_version: int, client: str, person: str | None,
+               note: str | None, now: datetime) -> None:
+    """Record an acknowledgement of version ``flag_version`` of the Flag."""
+    session.execute(insert(_ACK).values(id=str(uuid.uuid4()), flag_id=flag_id, flag_version=flag_version,
+                                        acknowledged_at=now, client=client, person=person, note=note))
+
+
 def acknowledge(*, session: Session, flag_id: str, client: str, note: str | None, now: datetime) -> Any:
-    """Record an acknowledgement of the Flag's current version; returns the flag row (None if unknown)."""
+    """The row-only acknowledgement the board called before ``service.acknowledging.acknowledge``
+    existed: records an acknowledgement of the current version and returns the flag row (None if
+    unknown), writing no Flag version. Kept only until the board calls the service function; then
+    delete it."""
     flag = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).first()
     if flag is None:
         return None
-    session.execute(insert(_ACK).values(id=str(uuid.uuid4()), flag_id=flag_id, flag_version=flag.version_id,
-                                        acknowledged_at=now, client=client, note=note))
+    record_ack(session=session, flag_id=flag_id, flag_version=flag.version_id, client=client, person=None,
+               note=note, now=now)
     return flag
+
+
+def covering_acks(*, session: Session, flags: Sequence[Any]) -> dict[str, AckView]:
+    """The newest acknowledgement that covers each of these flag rows (made at or after the row's
+    ``priority_since``), by flag id; a Flag no acknowledgement covers is absent."""
+    since = {f.id: f.priority_since for f in flags}
+    if not since:
+        return {}
+    out: dict[str, AckView] = {}
+    rows = session.execute(select(_ACK).where(_ACK.c.flag_id.in_(sorted(since)))
+                           .order_by(_ACK.c.acknowledged_at, _ACK.c.flag_version, _ACK.c.id))
+    for a in rows:
+        if a.acknowledged_at >= since[a.flag_id]:  # ordered, so the newest covering one wins
+            out[a.flag_id] = AckView(by=a.person or a.client, client=a.client, when=a.acknowledged_at,
+                                     note=a.note, version=a.flag_version)
+    return out
 
 
 def first_acks(*, session: Session, flag_ids: Sequence[str]) -> dict[str, datetime]:

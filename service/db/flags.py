@@ -11,13 +11,17 @@ import orjson
 from sqlalchemy import insert, or_, select, update
 from sqlmodel import Session
 
+from service.db.acks import covering_acks
 from service.db.tables import FhirVersion, FlagRecord, InsulinRecord, ObservationRecord, PatientAlias
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.flags import CloseFlag, CreateFlag, FlagChange, OpenFlag, UpdateFlag
-from service.fhir.flag_render import FlagView, render_flag
+from service.domain.wording import closed_lead, untold, withdrawn_lead
+from service.fhir.flag_render import ACKNOWLEDGEMENT_URL, AckView, FlagView, render_flag, subject_reference
 
 __all__ = [
     "FlagWrite",
+    "drop_acknowledgement",
+    "write_event_version",
     "open_flags",
     "patients_to_recheck",
     "subjects",
@@ -52,19 +56,15 @@ def open_flags(*, session: Session, patient_keys: Iterable[str]) -> dict[str, li
 
 
 def subjects(*, session: Session, patient_keys: Iterable[str]) -> dict[str, dict[str, Any]]:
-    """The FHIR subject Reference for each patient: a literal reference if the feed ever sent one,
-    else an identifier."""
+    """The FHIR subject Reference for each patient, naming it every way the feed has: the first literal
+    reference (by alias order) in ``reference``, the first identifier in ``identifier`` (R4 allows both
+    on one Reference), and every other one in a ``subject-alias`` extension on the Reference."""
     rows = session.execute(select(_ALIAS.c.patient_key, _ALIAS.c.alias).where(
         _ALIAS.c.patient_key.in_(sorted(set(patient_keys)))).order_by(_ALIAS.c.alias))
-    out: dict[str, dict[str, Any]] = {}
+    aliases: dict[str, list[str]] = {}
     for key, alias in rows:
-        kind, _, value = alias.partition(":")
-        if kind == "ref" and "reference" not in out.get(key, {}):
-            out[key] = {"reference": value}
-        elif kind == "id" and key not in out:
-            system, _, ident = value.partition("|")
-            out[key] = {"identifier": {"system": system, "value": ident}}
-    return out
+        aliases.setdefault(key, []).append(alias)
+    return {key: subject_reference(names) for key, names in aliases.items()}
 
 
 class FlagWrite:
@@ -122,7 +122,8 @@ def write_changes(
                 status=status, period_end=end, version_id=version, last_updated=now))
             kind = "close" if isinstance(change, CloseFlag) else "withdraw"
         current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
-        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        lead = "" if kind in ("create", "reactivate", "update") else _ending_lead(kind, current)
+        flag = _render(session, current, subject_of.get(current.patient_key, {}), lead)
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite(kind, rid, version, flag, current))
@@ -165,7 +166,7 @@ def write_late_flags(
             session.execute(update(_FLAG).where(_FLAG.c.id == rid).values(version_id=version, last_updated=now,
                                                                            **values))
         current = session.execute(select(_FLAG).where(_FLAG.c.id == rid)).one()
-        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        flag = _render(session, current, subject_of.get(current.patient_key, {}))
         session.execute(insert(_V).values(resource_type="Flag", id=rid, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite(kind, rid, version, flag))
@@ -203,11 +204,51 @@ def withdraw_late_flags(
         session.execute(update(_FLAG).where(_FLAG.c.id == row.id).values(
             status="entered-in-error", version_id=version, last_updated=now))
         current = session.execute(select(_FLAG).where(_FLAG.c.id == row.id)).one()
-        flag = render_flag(_view(current, subject_of.get(current.patient_key, {})))
+        flag = _render(session, current, subject_of.get(current.patient_key, {}), _ending_lead("withdraw", current))
         session.execute(insert(_V).values(resource_type="Flag", id=row.id, version_id=version, last_updated=now,
                                           request_id=None, resource=orjson.dumps(flag)))
         written.append(FlagWrite("withdraw", row.id, version, flag))
     return written
+
+
+def write_event_version(
+    *, session: Session, flag_id: str, subject: Mapping[str, Any], lead: str, now: datetime
+) -> FlagWrite:
+    """A new version of the Flag that changes nothing the rules decide: it shows what happened to it
+    (an acknowledgement, an escalation) in ``lead`` before the sentence, and the acknowledgement that
+    now covers it. The flag row's evidence, numbers and sentence stay as they were, so the next
+    evaluation does not see the event as a difference."""
+    row = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).one()
+    version = row.version_id + 1
+    session.execute(update(_FLAG).where(_FLAG.c.id == flag_id).values(version_id=version, last_updated=now))
+    current = session.execute(select(_FLAG).where(_FLAG.c.id == flag_id)).one()
+    flag = _render(session, current, subject, lead)
+    session.execute(insert(_V).values(resource_type="Flag", id=flag_id, version_id=version, last_updated=now,
+                                      request_id=None, resource=orjson.dumps(flag)))
+    return FlagWrite("update", flag_id, version, flag, current)
+
+
+def drop_acknowledgement(*, session: Session, written: FlagWrite) -> None:
+    """Take the acknowledgement off a version just written (not yet announced): a page that asks for a
+    fresh acknowledgement (raised again, a priority rise) was decided after it was rendered."""
+    kept = [e for e in written.flag["extension"] if e["url"] != ACKNOWLEDGEMENT_URL]
+    if len(kept) == len(written.flag["extension"]):
+        return
+    written.flag["extension"] = kept
+    session.execute(update(_V).where(_V.c.resource_type == "Flag", _V.c.id == written.id,
+                                     _V.c.version_id == written.version_id)
+                    .values(resource=orjson.dumps(written.flag)))
+
+
+def _render(session: Session, row: Any, subject: Mapping[str, Any], lead: str = "") -> dict[str, Any]:
+    """The Flag JSON of a row; a version with a ``lead`` of its own (resolved, withdrawn, acknowledged,
+    escalated) quotes the finding's sentence without the finding's lead ("Raised: …")."""
+    ack = covering_acks(session=session, flags=[row]).get(row.id)
+    return render_flag(_view(row, subject, ack, lead))
+
+
+def _ending_lead(kind: str, row: Any) -> str:
+    return closed_lead() if kind == "close" else withdrawn_lead(row.rule, orjson.loads(row.numbers))
 
 
 def _existing(session: Session, f: Finding) -> Any:
@@ -224,12 +265,13 @@ def _finding_values(f: Finding, policy_hash: str) -> dict[str, Any]:
     }
 
 
-def _view(r: Any, subject: Mapping[str, Any]) -> FlagView:
+def _view(r: Any, subject: Mapping[str, Any], ack: AckView | None = None, lead: str = "") -> FlagView:
     return FlagView(
         id=r.id, version_id=r.version_id, last_updated=r.last_updated, status=r.status, rule=r.rule,
         episode=r.episode, priority=r.priority, period_start=r.period_start, period_end=r.period_end,
-        evidence=orjson.loads(r.evidence), numbers=orjson.loads(r.numbers), sentence=r.sentence,
-        subject=subject, encounter=r.encounter, policy_hash=r.policy_hash,
+        evidence=orjson.loads(r.evidence), numbers=orjson.loads(r.numbers),
+        sentence=untold(r.sentence) if lead else r.sentence,
+        subject=subject, encounter=r.encounter, policy_hash=r.policy_hash, acknowledgement=ack, lead=lead,
     )
 
 

@@ -10,6 +10,7 @@ from alembic import command
 from alembic.config import Config
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
+from sqlalchemy import text
 
 if TYPE_CHECKING:
     from service.db.engine import Database
@@ -27,6 +28,10 @@ def alembic_config(url: str) -> Config:
 def upgrade(db: Database, revision: str = "head") -> None:
     cfg = alembic_config(db.url)
     with db.engine.begin() as conn:
+        if conn.dialect.name == "postgresql":
+            # Replicas started together would otherwise run the same migration at once; the second
+            # waits here, then finds the schema at head and does nothing. Released at commit.
+            conn.execute(text("SELECT pg_advisory_xact_lock(hashtextextended(:k, 0))"), {"k": "migrate"})
         cfg.attributes["connection"] = conn
         command.upgrade(cfg, revision)
 

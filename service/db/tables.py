@@ -92,6 +92,9 @@ class ObservationRecord(SQLModel, table=True):
     status: str
     value: float | None = None  # canonical unit; None when not numeric
     comparator: str | None = None
+    # The value and unit as the lab sent them (the unit's text, else its UCUM code), for sentences.
+    sent_value: float | None = None
+    sent_unit: str | None = None
     effective: datetime = _utc(nullable=False)
     issued: datetime | None = _utc(nullable=True)
     encounter: str | None = None
@@ -198,7 +201,8 @@ class FlagAck(SQLModel, table=True):
     flag_id: str
     flag_version: int
     acknowledged_at: datetime = _utc(nullable=False)
-    client: str
+    client: str  # the token's client
+    person: str | None = None  # the person who acknowledged, when the caller named one
     note: str | None = None
 
 

@@ -61,7 +61,7 @@ def load_timelines(
             specimen=Specimen(r.specimen), loinc=r.loinc, status=ResultStatus(r.status),
             effective=r.effective, value=r.value, comparator=r.comparator, calculated=r.calculated,
             issued=r.issued, encounter=r.encounter, key=f"{r.identifier_system}|{r.identifier_value}",
-            quality=r.quality, arrived=r.last_updated,
+            quality=r.quality, arrived=r.last_updated, sent_value=r.sent_value, sent_unit=r.sent_unit,
         ))
     exposures: dict[str, list[InsulinExposure]] = {k: [] for k in keys}
     for x in exposure_rows:

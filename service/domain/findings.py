@@ -33,6 +33,30 @@ class Rule(StrEnum):
     GLUCOSE_FALL_TOO_FAST = "glucose-fall-too-fast"
     HYPOKALEMIA_ON_INSULIN = "hypokalemia-on-insulin"
 
+    @property
+    def display(self) -> str:
+        """The rule in plain words: the display of its code in our rule CodeSystem and on each Flag."""
+        return _DISPLAYS[self]
+
+
+_DISPLAYS = {
+    Rule.SODIUM_CRITICAL_LOW: "Sodium critically low",
+    Rule.SODIUM_CRITICAL_HIGH: "Sodium critically high",
+    Rule.POTASSIUM_CRITICAL_LOW: "Potassium critically low",
+    Rule.POTASSIUM_CRITICAL_HIGH: "Potassium critically high",
+    Rule.GLUCOSE_CRITICAL_LOW: "Glucose critically low",
+    Rule.GLUCOSE_CRITICAL_HIGH: "Glucose critically high",
+    Rule.OSMOLALITY_CRITICAL_LOW: "Osmolality critically low",
+    Rule.OSMOLALITY_CRITICAL_HIGH: "Osmolality critically high",
+    Rule.SODIUM_RISE_TOO_FAST: "Sodium rising too fast in hyponatraemia",
+    Rule.SODIUM_RISE_PROJECTED: "Sodium rising at a pace that would exceed the 24 h limit",
+    Rule.SODIUM_FALL_TOO_FAST: "Sodium falling too fast in hypernatraemia",
+    Rule.SODIUM_FALL_IN_CRISIS: "Sodium falling too fast in a hyperglycaemic crisis",
+    Rule.OSMOLALITY_FALL_TOO_FAST: "Osmolality falling too fast",
+    Rule.GLUCOSE_FALL_TOO_FAST: "Glucose falling too fast",
+    Rule.HYPOKALEMIA_ON_INSULIN: "Low potassium during insulin therapy",
+}
+
 
 class Priority(StrEnum):
     HIGH = "high"

@@ -94,6 +94,9 @@ class LabResult:
     # What the lab said about the sample's quality, e.g. "haemolysed (specimen condition HEM)".
     quality: str | None = None
     arrived: datetime | None = None  # when this version was stored here (its "arrival"), if known
+    # The value and unit as the lab sent them (sentences show them beside the canonical value).
+    sent_value: float | None = None
+    sent_unit: str | None = None
 
     @property
     def reference(self) -> str:

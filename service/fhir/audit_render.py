@@ -30,8 +30,9 @@ _PROFILES = {"read": ("PatientRead", "Read"), "vread": ("PatientRead", "Read"),
              "history-instance": ("PatientRead", "Read"), "search-type": ("PatientQuery", "Query"),
              "update": ("PatientUpdate", "Update"), "delete": ("PatientDelete", "Delete")}
 # Events of ours that are no RESTful interaction, and so claim no BALP profile. dropped-code: a
-# request's results under a likely mistyped code were not stored (counted per client).
-_OWN_SUBTYPES = {"dropped-code": "C"}
+# request's results under a likely mistyped code were not stored (counted per client). purge: the
+# retention period deleted raw requests and AuditEvents (counted; service/retention.py).
+_OWN_SUBTYPES = {"dropped-code": "C", "purge": "D"}
 # Our operations, by the RESTful interaction each amounts to: $acknowledge writes a new Flag version;
 # the others only read.
 _OPERATION_KIND = {"$acknowledge": "update", "$summary": "search-type", "$refusals": "search-type",

@@ -69,12 +69,23 @@ def _operation_definitions() -> list[dict[str, Any]]:
            "kind": "operation", "affectsState": True, "code": "acknowledge", "resource": ["Flag"],
            "system": False, "type": False, "instance": True,
            "description": "Record that the team has seen this active Flag: its escalation stops for the priority "
-                          "it had when acknowledged. " + CAUTION,
+                          "it had when acknowledged, and a new Flag version shows the acknowledgement (extension "
+                          "flag-acknowledgement). Acknowledging the version an acknowledgement wrote changes "
+                          "nothing and says who acknowledged it and when (already = true). " + CAUTION,
            "parameter": [
                _param("note", "in", "string", "free text kept with the acknowledgement (at most 2000 characters)"),
-               _param("flag", "out", "Reference", "the Flag version acknowledged", 1),
+               _param("who", "in", "string", "the person acknowledging, when not the token's client (at most 200 "
+                                             "characters); a valueReference with a display is read as that "
+                                             "display"),
+               _param("flag", "out", "Reference", "the Flag version that shows the acknowledgement", 1),
                _param("acknowledged", "out", "dateTime", "when", 1),
-               _param("by", "out", "string", "the client the token names", 1),
+               _param("by", "out", "string", "the person named by who, else the client the token names", 1),
+               _param("client", "out", "string", "the client the token names", 1),
+               _param("note", "out", "string", "the note kept"),
+               _param("already", "out", "boolean", "true when this version was already acknowledged: nothing "
+                                                   "was written, and by and acknowledged are the earlier "
+                                                   "acknowledgement's", 1),
+               _param("message", "out", "string", "what happened, in words", 1),
            ]}
     summary = {"resourceType": "OperationDefinition", "id": "Flag-summary",
                "url": canonical("OperationDefinition", "Flag-summary"), "name": "FlagSummary", **_COMMON,
@@ -145,7 +156,14 @@ def _rule_code_system() -> dict[str, Any]:
     return {"resourceType": "CodeSystem", "id": "rule", "url": RULE_SYSTEM, "name": "LytestreamRule", **_COMMON,
             "description": "The rules whose findings lytestream raises as Flags. " + CAUTION,
             "caseSensitive": True, "content": "complete",
-            "concept": [{"code": r.value, "display": r.value.replace("-", " ").capitalize()} for r in Rule]}
+            "concept": [{"code": r.value, "display": r.display} for r in Rule]}
+
+
+_FILTER_WORDS = {
+    "patient:identifier": "Flag search parameter patient with the :identifier modifier: system|value of any "
+                          "identifier the Flag names its patient by (subject.identifier or a subject-alias "
+                          "extension)",
+}
 
 
 def _topics() -> list[dict[str, Any]]:
@@ -159,8 +177,8 @@ def _topics() -> list[dict[str, Any]]:
             "resourceTrigger": [{"description": topic.description,
                                  "resource": "http://hl7.org/fhir/StructureDefinition/Flag",
                                  "supportedInteraction": ["create", "update"]}],
-            "canFilterBy": [{"resource": "Flag", "filterParameter": f,
-                             "description": f"Flag search parameter {f}"} for f in sorted(topic.filters)],
+            "canFilterBy": [{"resource": "Flag", "filterParameter": f, "description": _FILTER_WORDS.get(
+                f, f"Flag search parameter {f}")} for f in sorted(topic.filters)],
             "notificationShape": [{"resource": "Flag"}],
         })
     return out

@@ -2,7 +2,10 @@
 
 The Flag carries its evidence (one version-specific ``flag-detail`` per result), its priority
 (``flag-priority``), and an extension of ours with the rule, the episode, the computed numbers and the
-hash of the policy it was judged under, so an analyst can explain it later from the Flag alone.
+hash of the policy it was judged under, so an analyst can explain it later from the Flag alone. While an
+acknowledgement covers it (made at or after the priority it saw began), a second extension of ours,
+``flag-acknowledgement``, says who acknowledged it (``by``: the named person, else the token's client),
+through which ``client``, ``when``, the ``note`` and the ``acknowledgedVersion``.
 """
 
 from __future__ import annotations
@@ -12,22 +15,42 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
+from service.domain.findings import Rule
 from service.fhir.render import CAUTION, fhir_instant
 
 __all__ = [
+    "ACKNOWLEDGEMENT_URL",
+    "AckView",
     "EVALUATION_URL",
     "FlagView",
     "RULE_SYSTEM",
+    "SUBJECT_ALIAS_URL",
     "render_flag",
+    "subject_reference",
 ]
 
 # Our own namespace (".example" is reserved, so it can never collide with a real site).
 CANONICAL_BASE = "https://lytestream.example/fhir"
 RULE_SYSTEM = f"{CANONICAL_BASE}/CodeSystem/rule"
 EVALUATION_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-evaluation"
+ACKNOWLEDGEMENT_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-acknowledgement"
+# On Flag.subject: one more name the feed used for the patient (valueReference or valueIdentifier), beyond
+# the subject's own reference and identifier.
+SUBJECT_ALIAS_URL = f"{CANONICAL_BASE}/StructureDefinition/subject-alias"
 FLAG_PRIORITY_URL = "http://hl7.org/fhir/StructureDefinition/flag-priority"
 FLAG_DETAIL_URL = "http://hl7.org/fhir/StructureDefinition/flag-detail"
 _PRIORITY = {"high": ("PH", "High priority"), "medium": ("PM", "Medium priority"), "low": ("PL", "Low priority")}
+
+
+@dataclass(frozen=True, slots=True)
+class AckView:
+    """The acknowledgement a Flag version shows."""
+
+    by: str  # the named person, else the client
+    client: str
+    when: datetime
+    note: str | None
+    version: int  # the Flag version that was acknowledged
 
 
 @dataclass(frozen=True, slots=True)
@@ -49,6 +72,30 @@ class FlagView:
     subject: Mapping[str, Any]
     encounter: str | None
     policy_hash: str
+    acknowledgement: AckView | None = None
+    lead: str = ""  # what this version did, before the sentence ("Acknowledged by …: "); "" for none
+
+
+def subject_reference(aliases: Sequence[str]) -> dict[str, Any]:
+    """A patient's aliases (``ref:<reference>``, ``id:<system>|<value>``, in a stable order) as one R4
+    Reference: the first literal reference, the first identifier, and the rest as ``subject-alias``."""
+    refs = [a.removeprefix("ref:") for a in aliases if a.startswith("ref:")]
+    ids = [_identifier(a.removeprefix("id:")) for a in aliases if a.startswith("id:")]
+    subject: dict[str, Any] = {}
+    if refs:
+        subject["reference"] = refs[0]
+    if ids:
+        subject["identifier"] = ids[0]
+    rest = [{"url": SUBJECT_ALIAS_URL, "valueReference": {"reference": r}} for r in refs[1:]]
+    rest += [{"url": SUBJECT_ALIAS_URL, "valueIdentifier": i} for i in ids[1:]]
+    if rest:
+        subject["extension"] = rest
+    return subject
+
+
+def _identifier(alias: str) -> dict[str, str]:
+    system, _, value = alias.rpartition("|")
+    return {"system": system, "value": value} if system else {"value": value}
 
 
 def render_flag(v: FlagView) -> dict[str, Any]:
@@ -73,11 +120,12 @@ def render_flag(v: FlagView) -> dict[str, Any]:
                 {"system": "http://hl7.org/fhir/flag-priority-code", "code": code, "display": display}]}},
             *({"url": FLAG_DETAIL_URL, "valueReference": {"reference": ref}} for ref in v.evidence),
             {"url": EVALUATION_URL, "extension": evaluation},
+            *([_acknowledgement(v.acknowledgement)] if v.acknowledgement else []),
         ],
         "status": v.status,
         "category": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/flag-category",
                                   "code": "clinical", "display": "Clinical"}]}],
-        "code": {"coding": [{"system": RULE_SYSTEM, "code": v.rule}], "text": v.sentence},
+        "code": {"coding": [_rule_coding(v.rule)], "text": v.lead + v.sentence},
         "subject": dict(v.subject),
         "period": {"start": fhir_instant(v.period_start)},
         "author": {"reference": "Device/lytestream", "display": "lytestream"},
@@ -87,3 +135,24 @@ def render_flag(v: FlagView) -> dict[str, Any]:
     if v.encounter:
         flag["encounter"] = {"reference": v.encounter}
     return flag
+
+
+def _rule_coding(rule: str) -> dict[str, Any]:
+    coding = {"system": RULE_SYSTEM, "code": rule}
+    try:
+        coding["display"] = Rule(rule).display
+    except ValueError:  # a rule code this build no longer knows: its code alone
+        pass
+    return coding
+
+
+def _acknowledgement(a: AckView) -> dict[str, Any]:
+    parts: list[dict[str, Any]] = [
+        {"url": "by", "valueString": a.by},
+        {"url": "client", "valueString": a.client},
+        {"url": "when", "valueDateTime": fhir_instant(a.when)},
+    ]
+    if a.note:
+        parts.append({"url": "note", "valueString": a.note})
+    parts.append({"url": "acknowledgedVersion", "valuePositiveInt": a.version})
+    return {"url": ACKNOWLEDGEMENT_URL, "extension": parts}

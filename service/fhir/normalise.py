@@ -79,6 +79,8 @@ class IncomingObservation:
     resource: dict[str, Any]
     content_hash: str
     quality: str | None = None  # a sample-quality remark that makes the result suspect
+    sent_value: float | None = None  # the value as sent, in ``sent_unit``
+    sent_unit: str | None = None  # the unit as sent: its text, else its UCUM code
 
 
 @dataclass(frozen=True, slots=True)
@@ -207,11 +209,15 @@ def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root:
             )
         )
     value, comparator = None, None
+    sent_value, sent_unit = None, None
     quantity = resource.get("valueQuantity")
     if quantity is not None and quantity.get("value") is not None:
         value, comparator, unit_issue = _quantity(quantity, entry, f"{root}.valueQuantity")
         if unit_issue:
             issues.append(unit_issue)
+        elif value is not None:
+            shown = quantity.get("unit") or quantity.get("code")
+            sent_value, sent_unit = float(quantity["value"]), (str(shown) if shown else None)
     issued = _read_time(resource.get("issued"), f"{root}.issued", issues)
     if issues:
         raise Invalid(issues)
@@ -230,6 +236,8 @@ def normalise_observation(resource: dict[str, Any], entry: CatalogueEntry, root:
         resource=resource,
         content_hash=content_hash(resource),
         quality=sample_quality(resource),
+        sent_value=sent_value,
+        sent_unit=sent_unit,
     )
 
 

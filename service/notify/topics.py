@@ -19,7 +19,7 @@ from urllib.parse import unquote, urlsplit
 
 from service.domain.findings import Rule
 from service.errors import Issue
-from service.fhir.flag_render import CANONICAL_BASE, FLAG_PRIORITY_URL, RULE_SYSTEM
+from service.fhir.flag_render import CANONICAL_BASE, FLAG_PRIORITY_URL, RULE_SYSTEM, SUBJECT_ALIAS_URL
 from service.notify.headers import HeaderError, parse_header
 
 __all__ = [
@@ -75,13 +75,13 @@ class Topic:
     filters: frozenset[str]
 
 
-_FLAG_FILTERS = frozenset({"patient", "priority", "code"})
+_FLAG_FILTERS = frozenset({"patient", "patient:identifier", "priority", "code"})
 TOPICS: Mapping[str, Topic] = {
     t.url: t
     for t in (
         Topic(FLAG_CHANGED, "Flag changed",
-              "Any new version of a Flag we raise: raised, re-raised, updated, closed or withdrawn (for "
-              "integrations that keep a copy; responders subscribe to flag-alert).",
+              "Any new version of a Flag we raise: raised, re-raised, updated, acknowledged, escalated, "
+              "closed or withdrawn (for integrations that keep a copy; responders subscribe to flag-alert).",
               _FLAG_FILTERS),
         # The one for responders: a version that changes nothing they must act on is not sent here.
         Topic(FLAG_ALERT, "Flag alert",
@@ -90,8 +90,9 @@ TOPICS: Mapping[str, Topic] = {
               "closed or withdrawn.", _FLAG_FILTERS),
         Topic(FLAG_ESCALATED, "Flag escalated",
               "A Flag of an escalated priority left unacknowledged past the policy interval for its "
-              "priority; one event per interval until it is acknowledged or closed. An acknowledgement "
-              "made before a rise in priority no longer covers it.", _FLAG_FILTERS),
+              "priority: the Flag version each escalation writes, one per interval until it is "
+              "acknowledged or closed. An acknowledgement made before a rise in priority no longer "
+              "covers it.", _FLAG_FILTERS),
     )
 }
 
@@ -135,6 +136,8 @@ def _match_one(name: str, value: str, flag: Mapping[str, Any]) -> bool:
         ref = (flag.get("subject") or {}).get("reference")
         # A subject known only by identifier has no literal reference, so it never matches `patient`.
         return isinstance(ref, str) and _patient_key(ref) == _patient_key(value)
+    if name == "patient:identifier":
+        return _identifier_token(value) in _subject_identifiers(flag)
     if name == "priority":
         return value in _priority_codes(flag)
     if name == "code":
@@ -147,6 +150,20 @@ def _match_one(name: str, value: str, flag: Mapping[str, Any]) -> bool:
                 return True
         return False
     return False
+
+
+def _subject_identifiers(flag: Mapping[str, Any]) -> set[tuple[str, str]]:
+    """(system, value) of every identifier the Flag names its patient by: subject.identifier and each
+    subject-alias extension's valueIdentifier."""
+    subject = flag.get("subject") or {}
+    found = [subject.get("identifier")] + [e.get("valueIdentifier") for e in subject.get("extension") or ()
+                                           if e.get("url") == SUBJECT_ALIAS_URL]
+    return {(i.get("system", ""), i.get("value", "")) for i in found if isinstance(i, Mapping)}
+
+
+def _identifier_token(value: str) -> tuple[str, str]:
+    system, _, ident = value.partition("|")
+    return system, ident
 
 
 def _priority_codes(flag: Mapping[str, Any]) -> set[str]:
@@ -294,6 +311,11 @@ def _filter_value_problem(name: str, value: str) -> str | None:
         key = _patient_key(value)
         if not key.startswith("Patient/") or not _FHIR_ID.match(key.removeprefix("Patient/")):
             return f"patient filter {value!r} must be a Patient reference such as Patient/123"
+    elif name == "patient:identifier":
+        system, bar, ident = value.partition("|")
+        if not bar or not system or not ident:
+            return (f"patient:identifier filter {value!r} must read system|value, e.g. "
+                    "urn:oid:2.16.840.1.113883.19.5|12345 (the MRN's system and value)")
     elif name == "priority":
         if value not in _PRIORITY_RANK:
             return f"priority filter {value!r} must be one of PH, PM, PL (flag-priority-code)"

@@ -56,7 +56,7 @@ def test_capability_statement_says_what_the_responder_topic_carries(client: Test
     sub = next(r for r in body["rest"][0]["resource"] if r["type"] == "Subscription")
     assert "Topic https://lytestream.example/fhir/SubscriptionTopic/flag-alert: The Flag versions a responder " \
            "must act on" in sub["documentation"]
-    assert "Filters: code, patient, priority." in sub["documentation"]
+    assert "Filters: code, patient, patient:identifier, priority." in sub["documentation"]
 
 
 def test_served_subscription_validates(client: TestClient) -> None:

@@ -81,7 +81,8 @@ def test_an_acknowledged_medium_flag_that_rises_to_high_is_escalated_again_after
     assert escalate(context, clock) == 0
     clock.advance(2 * SECOND)
     assert escalate(context, clock) == 1
-    assert events(context, escalated) == [(flag_id, 2)]
+    # Versions: 1 raised, 2 the acknowledgement, 3 the rise to high, 4 the escalation.
+    assert events(context, escalated) == [(flag_id, 4)]
 
 
 def test_an_acknowledgement_after_the_rise_covers_the_high_priority(
@@ -151,3 +152,39 @@ def test_a_round_found_due_is_not_claimed_once_the_flag_is_acknowledged(
     ack(client, due.flag_id)  # between one replica's look and its claim
     with context.db.session(write=True) as session:
         assert not claim_escalation(session=session, due=due, after=intervals, now=clock.now())
+
+
+def test_each_escalation_is_a_flag_version_saying_its_round_and_how_long_it_was_unacknowledged(
+    client: TestClient, context: AppContext, clock: FixedClock, escalated: str
+) -> None:
+    send(client, sodium("na8", 118, 8))
+    flag_id = only_flag(client)["id"]
+    for _ in range(3):
+        clock.advance(after(context, Priority.HIGH))
+        assert escalate(context, clock) == 1
+    flag = only_flag(client)
+    assert flag["meta"]["versionId"] == "4"
+    assert flag["code"]["text"].startswith("Escalation 3: unacknowledged for 45 min. ")
+    assert "118" in flag["code"]["text"]  # the finding is still said after the escalation
+    assert events(context, escalated) == [(flag_id, 2), (flag_id, 3), (flag_id, 4)]
+
+
+def test_an_escalation_version_is_not_a_difference_the_next_evaluation_undoes(
+    client: TestClient, context: AppContext, clock: FixedClock
+) -> None:
+    send(client, sodium("na8", 118, 8))
+    clock.advance(after(context, Priority.HIGH))
+    escalate(context, clock)
+    assert context.evaluator.recheck(context.db, clock.now()) == 0
+    assert only_flag(client)["meta"]["versionId"] == "2"
+
+
+def test_a_rise_in_priority_takes_the_older_acknowledgement_off_the_flag(
+    client: TestClient, context: AppContext, clock: FixedClock
+) -> None:
+    flag_id = raise_medium_hypokalaemia(client)
+    ack(client, flag_id)
+    assert any(e["url"].endswith("/flag-acknowledgement") for e in only_flag(client)["extension"])
+    clock.advance(timedelta(minutes=30))
+    send(client, potassium("k3", 2.9, "12:30"))  # below 3.0: high
+    assert not any(e["url"].endswith("/flag-acknowledgement") for e in only_flag(client)["extension"])

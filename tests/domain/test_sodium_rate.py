@@ -9,6 +9,8 @@ or >0.5 mmol/L/h (Adrogué & Madias 2000, from memory), sustained >=4 h (common 
 
 from __future__ import annotations
 
+import re
+
 import pytest
 
 from service.domain.findings import Priority, Rule
@@ -135,12 +137,16 @@ def test_six_in_the_first_six_hours_is_projected_past_the_24h_limit() -> None:
     assert projected.numbers["rate_per_hour"] == pytest.approx(1.0)
     assert projected.numbers["projected_rise_24h"] == pytest.approx(24.0)
     assert projected.priority is Priority.MEDIUM
-    assert "at this pace the rise over 24 h would be 24 mmol/L" in projected.sentence
+    assert "at this pace sodium would rise 24 mmol/L in 24 h" in projected.sentence
 
 
 def test_a_projection_is_never_worded_as_a_sodium_level() -> None:
     projected = findings(na(112, 0), na(115, 3), na(118, 6))[Rule.SODIUM_RISE_PROJECTED]
     assert "reach" not in projected.sentence
+    # No number after "sodium" but the measured ones: a projected 24 must never read as "sodium 24".
+    for number in re.findall(r"[Ss]odium (?:of )?([0-9.]+)", projected.sentence):
+        assert float(number) in (112.0, 115.0, 118.0)
+    assert "from a nadir of 112 mmol/L" in projected.sentence  # the nadir carries its unit
 
 
 def test_one_result_after_the_nadir_is_no_trend_to_project() -> None:

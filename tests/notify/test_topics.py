@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.errors import Issue
-from service.fhir.flag_render import RULE_SYSTEM, FlagView, render_flag
+from service.fhir.flag_render import RULE_SYSTEM, FlagView, render_flag, subject_reference
 from service.notify.topics import (
     FLAG_ALERT,
     FLAG_CHANGED,
@@ -264,6 +264,37 @@ def test_no_filters_match_everything() -> None:
     assert matches(spec_with(), flag(patient="Patient/999", priority="low"))
 
 
+def flag_of(*aliases: str) -> dict[str, Any]:
+    return {**flag(), "subject": subject_reference(aliases)}
+
+
+def test_patient_identifier_filter_matches_the_subjects_identifier() -> None:
+    spec = spec_with("Flag?patient:identifier=urn:mrn|9")
+    assert matches(spec, flag_of("id:urn:mrn|9", "ref:Patient/p9"))
+    assert not matches(spec, flag_of("id:urn:mrn|90"))
+    assert not matches(spec, flag_of("id:urn:other|9"))  # the same value under another system is another patient
+    assert not matches(spec, flag_of("ref:Patient/9"))
+
+
+def test_patient_identifier_filter_matches_an_identifier_listed_as_a_further_alias() -> None:
+    spec = spec_with("Flag?patient:identifier=urn:z-mrn|X-9")
+    subject = flag_of("id:urn:a-mrn|1", "id:urn:z-mrn|X-9")["subject"]
+    assert subject["identifier"] == {"system": "urn:a-mrn", "value": "1"}  # the other one is in the extension
+    assert matches(spec, flag_of("id:urn:a-mrn|1", "id:urn:z-mrn|X-9"))
+
+
+def test_patient_identifier_filter_values_are_ored() -> None:
+    spec = spec_with("Flag?patient:identifier=urn:mrn|1,urn:mrn|2")
+    assert matches(spec, flag_of("id:urn:mrn|2"))
+
+
+def test_patient_identifier_filter_without_a_system_is_refused() -> None:
+    sub = subscription()
+    sub["_criteria"]["extension"][0]["valueString"] = "Flag?patient:identifier=|9"
+    issues = parse_subscription(sub)
+    assert isinstance(issues, list) and "system|value" in issues[0].message
+
+
 def test_patient_filter() -> None:
     spec = spec_with("Flag?patient=Patient/123")
     assert matches(spec, flag(patient="Patient/123"))
@@ -307,7 +338,7 @@ def test_topic_canonicals_live_under_our_base() -> None:
     assert set(TOPICS) == {FLAG_CHANGED, FLAG_ALERT, FLAG_ESCALATED}
     assert FLAG_CHANGED == "https://lytestream.example/fhir/SubscriptionTopic/flag-changed"
     assert FLAG_ALERT == "https://lytestream.example/fhir/SubscriptionTopic/flag-alert"
-    assert all(t.filters == {"patient", "priority", "code"} for t in TOPICS.values())
+    assert all(t.filters == {"patient", "patient:identifier", "priority", "code"} for t in TOPICS.values())
 
 
 def test_responder_topic_accepted_with_the_same_filters() -> None:

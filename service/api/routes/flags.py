@@ -8,6 +8,7 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 from starlette.datastructures import QueryParams
 
+from service.acknowledging import acknowledge
 from service.api.access_audit import audit_patient_access
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response
@@ -15,13 +16,10 @@ from service.api.paging import Page, page_bundle, patient_alias, search_params, 
 from service.api.requester import RequesterDep
 from service.auth.deps import require
 from service.auth.scopes import needed_scope
-from service.db.acks import acknowledge
-from service.db.audit import record_audit
-from service.db.flags import subjects
 from service.db.reads import FlagQuery, patient_key_for, read_references, search_flags
 from service.domain.findings import Rule
-from service.errors import Issue, NotFound, RequestRejected
-from service.fhir.audit_render import AuditFacts, Requester
+from service.errors import Issue, RequestRejected
+from service.fhir.audit_render import Requester
 from service.fhir.flag_render import FLAG_DETAIL_URL, RULE_SYSTEM
 from service.fhir.render import fhir_instant
 from service.fhir.search import codes_in_system, date_bounds, intersect, tokens
@@ -116,36 +114,28 @@ def _readable_evidence(refs: list[str], who: Requester) -> tuple[list[str], list
 
 @router.post("/fhir/Flag/{flag_id}/$acknowledge", dependencies=[Depends(require("Flag", "u"))])
 async def acknowledge_flag(flag_id: str, request: Request, ctx: ContextDep, who: RequesterDep) -> Response:
-    """Record that the team has seen this Flag (stops its escalation). Body: optional Parameters with a
-    ``note`` (valueString)."""
-    note = await _ack_note(request)
-    now = ctx.clock.now()
-
-    def run() -> dict[str, object]:
-        with ctx.db.session(write=True) as session:
-            flag = acknowledge(session=session, flag_id=flag_id, client=who.client, note=note, now=now)
-            if flag is None:
-                raise NotFound(f"Flag/{flag_id} is not held here")
-            if flag.status != "active":
-                raise RequestRejected([Issue("business-rule", f"Flag/{flag_id} is {flag.status}; only an active "
-                                             "Flag can be acknowledged", status=409)])
-            subject = subjects(session=session, patient_keys=[flag.patient_key]).get(flag.patient_key, {})
-            facts = AuditFacts(subtype="operation", operation="$acknowledge", recorded=now, requester=who,
-                               patient=subject, what=[f"Flag/{flag_id}/_history/{flag.version_id}"])
-            record_audit(session=session, events=[(facts, flag.patient_key)], base_url=ctx.settings.base_url)
-            return {"resourceType": "Parameters", "parameter": [
-                {"name": "flag", "valueReference": {"reference": f"Flag/{flag_id}/_history/{flag.version_id}"}},
-                {"name": "acknowledged", "valueDateTime": fhir_instant(now)},
-                {"name": "by", "valueString": who.client},
-            ]}
-
-    return fhir_response(await run_in_threadpool(run))
+    """Record that the team has seen this Flag (stops its escalation) and show it on the Flag. Body:
+    optional Parameters with a ``note`` (valueString) and ``who`` (valueString, or valueReference with a
+    display): the person acknowledging, when not the token's client."""
+    person, note = _ack_parameters(await request.body())
+    outcome = await run_in_threadpool(acknowledge, ctx, flag_id=flag_id, who=who, person=person, note=note)
+    parameters: list[dict[str, object]] = [
+        {"name": "flag", "valueReference": {"reference": f"Flag/{flag_id}/_history/{outcome.version_id}"}},
+        {"name": "acknowledged", "valueDateTime": fhir_instant(outcome.acknowledged_at)},
+        {"name": "by", "valueString": outcome.by},
+        {"name": "client", "valueString": outcome.client},
+        {"name": "already", "valueBoolean": outcome.already},
+        {"name": "message", "valueString": outcome.message},
+    ]
+    if outcome.note:
+        parameters.insert(4, {"name": "note", "valueString": outcome.note})
+    return fhir_response({"resourceType": "Parameters", "parameter": parameters})
 
 
-async def _ack_note(request: Request) -> str | None:
-    raw = await request.body()
+def _ack_parameters(raw: bytes) -> tuple[str | None, str | None]:
+    """(who, note) from the optional Parameters body; a wrongly typed one is refused with its path."""
     if not raw.strip():
-        return None
+        return None, None
     try:
         body = orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
@@ -155,13 +145,25 @@ async def _ack_note(request: Request) -> str | None:
     parameters = body.get("parameter") or []
     if not isinstance(parameters, list):
         raise RequestRejected([Issue("structure", "Parameters.parameter must be a list", ("Parameters.parameter",))])
+    found: dict[str, str] = {}
     for i, p in enumerate(parameters):
+        at = f"Parameters.parameter[{i}]"
         if not isinstance(p, dict):
-            raise RequestRejected([Issue("structure", "a parameter must be a JSON object",
-                                         (f"Parameters.parameter[{i}]",))])
-        if p.get("name") == "note":
-            if not isinstance(p.get("valueString"), str):
-                raise RequestRejected([Issue("value", "note must be a valueString",
-                                             (f"Parameters.parameter[{i}].valueString",))])
-            return str(p["valueString"])[:2000]
-    return None
+            raise RequestRejected([Issue("structure", "a parameter must be a JSON object", (at,))])
+        name = p.get("name")
+        if name not in ("note", "who"):
+            continue
+        if name in found:
+            raise RequestRejected([Issue("structure", f"{name} may be given once", (at,))])
+        if isinstance(p.get("valueString"), str):
+            found[name] = p["valueString"]
+        elif name == "who" and isinstance(p.get("valueReference"), dict):
+            display = p["valueReference"].get("display")
+            if not isinstance(display, str) or not display.strip():
+                raise RequestRejected([Issue("required", "who as a valueReference needs a display: the name "
+                                             "the team will read", (f"{at}.valueReference.display",))])
+            found[name] = display
+        else:
+            kinds = "a valueString or a valueReference with a display" if name == "who" else "a valueString"
+            raise RequestRejected([Issue("value", f"{name} must be {kinds}", (f"{at}.valueString",))])
+    return found.get("who"), found.get("note")

@@ -27,7 +27,7 @@ from itertools import groupby
 
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.insulin_exposure import exposure_active
-from service.domain.rules.series import Verdict, below, fmt, hours, trailing_run_start
+from service.domain.rules.series import Verdict, below, fmt, hours, shown, trailing_run_start
 from service.domain.values import Analyte, InsulinExposure, LabResult
 from service.policy.model import Policy
 
@@ -76,9 +76,8 @@ def evaluate_insulin_potassium(
     overdue = hours(latest.effective, now) > rules.recheck_hours
     high = hold or very_low or persistent or overdue
 
-    shown = f"{latest.comparator or ''}{fmt(latest.value or 0.0)}"
     started = min(e.start for e in active)
-    parts = [f"Potassium {shown} mmol/L, below {fmt(rules.below)} mmol/L, while insulin is being given"]
+    parts = [f"Potassium {shown(latest)}, below {fmt(rules.below)} mmol/L, while insulin is being given"]
     if started > latest.effective:
         parts[0] += f" (insulin started {_duration(latest.effective, started)} after this result)"
     if hold:

@@ -22,6 +22,7 @@ from service.domain.rules.series import (
     at_or_above,
     at_or_below,
     fmt,
+    shown,
     trailing_run_start,
 )
 from service.domain.values import Analyte, LabResult, Specimen
@@ -97,9 +98,8 @@ def _side(
     result, limit, _ = (min if side == "low" else max)(dangerous, key=lambda item: item[0].value or 0.0)
     bound = limit.low if side == "low" else limit.high
     unit = UNITS[analyte]
-    shown = f"{result.comparator or ''}{fmt(result.value or 0.0)}"
     sentence = (
-        f"{analyte.value.capitalize()}{_SPECIMEN_WORDS[result.specimen]} {shown} {unit}, "
+        f"{analyte.value.capitalize()}{_SPECIMEN_WORDS[result.specimen]} {shown(result)}, "
         f"at or {'below' if side == 'low' else 'above'} the critical limit of {fmt(bound)} {unit}"
     )
     numbers = {"value": result.value or 0.0, "limit": bound}
@@ -117,7 +117,7 @@ def _side(
                 )
                 sentence += (
                     f"; glucose-corrected sodium {fmt(corrected)} mmol/L "
-                    f"with glucose {fmt(glucose.value)} mmol/L"
+                    f"with glucose {shown(glucose)}"
                 )
                 numbers |= {"corrected_sodium": corrected, "glucose": glucose.value}
                 evidence.append(glucose.reference)

@@ -22,6 +22,7 @@ __all__ = [
     "exact",
     "fmt",
     "hours",
+    "shown",
     "latest_max",
     "latest_min",
     "trailing_run_start",
@@ -153,3 +154,15 @@ def fmt(value: float) -> str:
     text = f"{value:.1f}"
     text = text[:-2] if text.endswith(".0") else text
     return "0" if text == "-0" else text
+
+
+def shown(result: LabResult) -> str:
+    """A result's value for a sentence, in the unit the lab sent with the canonical value beside it:
+    "600 mg/dL (33.3 mmol/L)"; "7.1 mmol/L" when it was sent in the canonical unit (or its unit is not
+    known). A censored value keeps its comparator in both."""
+    unit = UNITS[result.analyte]
+    sign = result.comparator or ""
+    canonical = f"{sign}{fmt(result.value or 0.0)} {unit}"
+    if result.sent_value is None or not result.sent_unit or result.sent_unit.lower() == unit.lower():
+        return canonical
+    return f"{sign}{fmt(result.sent_value)} {result.sent_unit} ({canonical})"

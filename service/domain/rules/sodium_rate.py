@@ -333,8 +333,9 @@ def _projected(points: Sequence[_Point], measured: Sequence[_Rise], policy: Poli
         # Worded as a pace, never as a level: "would rise 15 mmol/L in 24 h", not "reach 15".
         sentence=(
             f"{change.label()} rose {fmt(change.amount)} mmol/L in {fmt(change.hours)} h from a nadir of "
-            f"{fmt(change.ref.value)}{change.details()} ({fmt(rate)} mmol/L/h); at this pace the rise "
-            f"over 24 h would be {fmt(projection)} mmol/L; limit {fmt(day.limit)} mmol/L in any 24 h{risk}."
+            f"{fmt(change.ref.value)} mmol/L{change.details()} ({fmt(rate)} mmol/L/h); at this pace "
+            f"{change.label().lower()} would rise {fmt(projection)} mmol/L in 24 h; limit {fmt(day.limit)} "
+            f"mmol/L in any 24 h{risk}."
         ),
     )
 
