@@ -1,5 +1,5 @@
 """`python -m service` is the `lytestream` command."""
 
-from service.cli import app
+from service.cli import main
 
-app()
+main()

@@ -103,8 +103,8 @@ class ArrivalReview:
         if written:
             enqueue_events(session=session, topic=FLAG_CHANGED, now=now,
                            flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in written])
-            log.info("late results judged in their own window: %d; flags written: %d",
-                     sum(len(v) for v in late.values()), len(written))
+            log.info("evaluation", extra={"trigger": "late-results", "late_results": sum(len(v) for v in late.values()),
+                                          "flags_changed": len(written)})
         return notes
 
     @property

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 import typer
 from rich.console import Console
@@ -11,6 +11,7 @@ from rich.console import Console
 from service.audit_cli import audit_app
 from service.auth.cli import token_app
 from service.config import Settings
+from service.ops.startup import database_fault, policy_fault
 
 app = typer.Typer(help="lytestream: FHIR lab results in, safety Flags out. Decision support only.",
                   no_args_is_help=True, add_completion=False)
@@ -38,6 +39,9 @@ def _settings(database_url: str | None = None, data_dir: Path | None = None) -> 
     return Settings(**overrides)
 
 
+LogLevel = Literal["debug", "info", "warning", "error"]
+
+
 @app.command()
 def serve(
     host: Annotated[str, typer.Option(help="interface to listen on")] = "127.0.0.1",
@@ -45,15 +49,20 @@ def serve(
     database_url: DatabaseUrl = None,
     data_dir: DataDir = None,
     workers: Annotated[int, typer.Option(min=1, max=64, help="worker processes (one per core)")] = 1,
+    log_level: Annotated[LogLevel | None, typer.Option(help="log level (default: LYTESTREAM_LOG_LEVEL, info)")]
+    = None,
 ) -> None:
-    """Run the FHIR service (migrates the schema first)."""
+    """Run the FHIR service (checks the policy and migrates the schema first)."""
     import os
 
     import uvicorn
 
-    from service.db.engine import Database
+    from service.auth.settings import check_startable, running_under_pytest
+    from service.policy import PolicyError, load_policy
 
     settings = _settings(database_url, data_dir)
+    if log_level is not None:
+        settings = settings.model_copy(update={"log_level": log_level})
     if "base_url" not in settings.model_fields_set:
         if host in _ALL_INTERFACES:
             # Behind a proxy or in a container the bind address says nothing of how clients reach us, and
@@ -62,20 +71,53 @@ def serve(
                        "base URL clients use, e.g. https://alerts.example.org/fhir", err=True)
             raise typer.Exit(code=2)
         settings = settings.model_copy(update={"base_url": f"http://{host}:{port}/fhir"})
+    try:  # here, once, before the banner: a worker that fails on it would only say so in its log
+        load_policy(settings.policy_file, profile=settings.policy_profile)
+    except PolicyError as exc:
+        raise policy_fault(exc, settings.policy_file, settings.policy_profile) from exc
+    check_startable(settings.auth, testing=running_under_pytest())
     # Migrate once here, before any worker starts; the workers read the same settings from the environment.
-    db = Database(settings.resolved_database_url)
-    db.create_schema()
-    db.dispose()
+    _migrate(settings)
     os.environ["LYTESTREAM_DATABASE_URL"] = settings.resolved_database_url
     os.environ["LYTESTREAM_DATA_DIR"] = str(settings.data_dir)
     os.environ["LYTESTREAM_BASE_URL"] = settings.base_url
+    os.environ["LYTESTREAM_LOG_LEVEL"] = settings.log_level
+    if workers > 1 and settings.metrics != "off":
+        _share_metrics(settings.data_dir / "metrics")
     console.print(f"lytestream on http://{host}:{port}/fhir — database {_safe_url(settings)}, {workers} worker(s)")
     console.print("[dim]Decision support only: thresholds are site policy; defer to local protocols.[/dim]")
     from service.logsafe import log_config
 
-    # log_config: exception text withheld on every handler, whoever logs (no patient data in logs).
+    # log_config: JSON lines, exception text withheld on every handler (no patient data in logs); uvicorn's
+    # access log stays off: service.api.request_log writes a line per request without paths or queries.
     uvicorn.run("service.main:app_from_environment", factory=True, host=host, port=port, workers=workers,
-                log_level="warning", access_log=False, log_config=log_config())
+                log_level=settings.log_level, access_log=False, log_config=log_config(settings.log_level))
+
+
+def _share_metrics(directory: Path) -> None:
+    """prometheus_client multiprocess mode for the workers: each writes its counters there and a scrape of
+    any worker sums them. Emptied first: the counters of a previous run are not this run's."""
+    import os
+
+    directory.mkdir(parents=True, exist_ok=True)
+    for stale in directory.glob("*.db"):
+        stale.unlink()
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = str(directory)  # read by prometheus_client in each worker
+    os.environ["LYTESTREAM_METRICS_MULTIPROCESS_DIR"] = str(directory)
+
+
+def _migrate(settings: Settings) -> None:
+    from sqlalchemy.exc import DBAPIError
+
+    from service.db.engine import Database
+
+    db = Database(settings.resolved_database_url)
+    try:
+        db.create_schema()
+    except DBAPIError as exc:
+        raise database_fault(exc, settings.resolved_database_url) from exc
+    finally:
+        db.dispose()
 
 
 @app.command()
@@ -154,12 +196,8 @@ def _serve_demo(file: Path | None, data_dir: Path | None, end: str, port: int) -
 @db_app.command("upgrade")
 def db_upgrade(database_url: DatabaseUrl = None, data_dir: DataDir = None) -> None:
     """Bring the schema to the newest migration."""
-    from service.db.engine import Database
-
     settings = _settings(database_url, data_dir)
-    db = Database(settings.resolved_database_url)
-    db.create_schema()
-    db.dispose()
+    _migrate(settings)
     console.print(f"schema up to date at {_safe_url(settings)}")
 
 
@@ -288,3 +326,19 @@ def _safe_url(settings: Settings) -> str:
     from sqlalchemy.engine import make_url
 
     return make_url(settings.resolved_database_url).render_as_string(hide_password=True)
+
+
+def main() -> None:
+    """The `lytestream` entry point: a start-up fault is one line on stderr and exit code 2, no traceback."""
+    import sys
+
+    from service.ops.startup import EXIT_CODE, startup_line
+
+    try:
+        app()
+    except Exception as exc:
+        line = startup_line(exc)
+        if line is None:
+            raise
+        print(line, file=sys.stderr)
+        sys.exit(EXIT_CODE)

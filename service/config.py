@@ -34,7 +34,7 @@ class Settings(BaseSettings):
         description="a local time the zone's clock change makes ambiguous or non-existent: refuse it (422), "
         "or accept it with a warning naming the change",
     )
-    max_bundle_entries: int = Field(default=1000, gt=0)
+    max_bundle_entries: int = Field(default=1000, gt=0, description="most entries in one Bundle (413 above)")
     # A full Bundle of 1000 lab results is about 1 MB; each body in progress costs a worker up to about
     # ten times its size (bench/memory_drill.py), so the limit is also what the memory budget rests on.
     max_body_bytes: int = Field(default=4 * 1024 * 1024, gt=0, description="largest request body, in bytes")
@@ -49,8 +49,8 @@ class Settings(BaseSettings):
     max_string_chars: int = Field(default=1024 * 1024, gt=0, le=1024 * 1024,
                                   description="longest string (or element name) accepted, in characters")
     lookback_hours: float = Field(default=72.0, gt=0, description="how far back the timeline reaches")
-    page_size_default: int = Field(default=50, gt=0)
-    page_size_max: int = Field(default=500, gt=0)
+    page_size_default: int = Field(default=50, gt=0, description="search results per page without _count")
+    page_size_max: int = Field(default=500, gt=0, description="largest _count honoured")
     policy_file: Path | None = Field(default=None, description="site policy TOML; default: built-in")
     policy_profile: str | None = Field(default=None, description="policy profile, e.g. paediatric")
     scheduler: bool = Field(default=True, description="run the time-driven jobs in this process")
@@ -97,6 +97,19 @@ class Settings(BaseSettings):
                                   "(default: a random key per process, so board logins end when it restarts)")
     board_session_hours: float = Field(default=8.0, gt=0, le=24, description="how long a board login lasts")
     board_refresh_seconds: float = Field(default=5.0, ge=1, description="how often an open board asks for changes")
+
+    # --- operations: logs, metrics (issue 12, observability) ---
+    log_level: Literal["debug", "info", "warning", "error"] = Field(
+        default="info", description="JSON log lines on stderr at this level and above (`serve --log-level`)")
+    # Off by default: the metrics name subscriptions and feeding clients, which is the hospital's network map.
+    # "open" is for a scraper on the same trusted network; "token" asks for any valid bearer token.
+    metrics: Literal["off", "open", "token"] = Field(
+        default="off", description="/metrics (Prometheus text) on the main port: off (404), open (no token), or "
+                                   "token (any valid bearer token)")
+    metrics_multiprocess_dir: Path | None = Field(
+        default=None, description="set by `serve --workers N` (N > 1): where the workers' counters are shared "
+                                  "(prometheus_client multiprocess mode); not set by hand")
+    # --- end operations ---
 
     @field_validator("lab_timezone")
     @classmethod

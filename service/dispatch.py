@@ -69,6 +69,7 @@ from service.notify.bundles import (
     heartbeat,
 )
 from service.notify.sender import deliver
+from service.ops.metrics import DELIVERY_ATTEMPTS
 
 __all__ = ["Dispatcher", "subscription_state"]
 
@@ -76,12 +77,21 @@ log = logging.getLogger("lytestream.dispatch")
 _S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
 
 
-def subscription_state(row: Any, base: str) -> SubscriptionState:
+def subscription_state(row: Any, base: str, trouble: Any | None = None) -> SubscriptionState:
+    """``trouble``: the failing head row (``delivery_trouble``); while the subscription is still requested
+    or active it is reported as an error, so a dead endpoint shows before the subscription gives up."""
     spec = load_spec(row)
-    errors = (ErrorNote(row.error),) if row.error else ()
+    errors: tuple[ErrorNote, ...] = (ErrorNote(row.error),) if row.error else ()
+    if trouble is not None and row.status in ("requested", "active"):
+        errors += (ErrorNote(f"{trouble.kind} delivery failing: {trouble.attempts} attempt(s) failed, the last with "
+                             f"{trouble.last_error}; next attempt at {_iso(trouble.next_attempt_at)}"),)
     return SubscriptionState(id=row.id, topic=row.topic, status=row.status,
                              events_since_start=row.events_since_start, content=spec.content, form=spec.form,
                              base=base, errors=errors)
+
+
+def _iso(at: datetime) -> str:
+    return at.isoformat().replace("+00:00", "Z")
 
 
 # A send starts only if the lease outlasts its timeout by this much: room to record the answer, and
@@ -181,6 +191,7 @@ class Dispatcher:
         timeout_s = float(spec.timeout_s or self.settings.delivery_timeout_seconds)
         hold = self._hold(timeout_s)
         sent = 0
+        prior_status = sub.status
         for row in rows:
             now = self.clock.now()
             if row.next_attempt_at > now:
@@ -215,8 +226,18 @@ class Dispatcher:
                 log.warning("delivery subscription=%s lease lost during a send; not recorded", sid)
                 return sent, False
             lease.until = done + hold
-            log.info("delivery subscription=%s kind=%s ok=%s error=%s", sid, row.kind, outcome.ok,
-                     outcome.error)
+            word = "ok" if outcome.ok else ("gave-up" if give_up else "retry")
+            DELIVERY_ATTEMPTS.labels(row.kind, word).inc()
+            log.log(logging.INFO if outcome.ok else logging.WARNING, "delivery attempt", extra={
+                "subscription": sid, "kind": row.kind, "number": row.number, "outcome": word,
+                "error": outcome.error, "http_status": outcome.status, "attempt": row.attempts + 1,
+                "elapsed_ms": outcome.elapsed_ms,
+                "next_attempt_at": None if decision is None or give_up else decision.at.isoformat()})  # type: ignore[union-attr]
+            if current.status != prior_status:
+                (log.warning if current.status == "error" else log.info)(
+                    "subscription state", extra={"subscription": sid, "from": prior_status, "to": current.status,
+                                                 "error": current.error})
+            prior_status = current.status
             if not outcome.ok:
                 return sent, False
             sent += 1

@@ -6,6 +6,8 @@ change a flag (a potassium recheck falls due, an episode ages out of its window)
 from __future__ import annotations
 
 import logging
+import time
+from collections import Counter
 from collections.abc import Iterable, Sequence
 from datetime import datetime, timedelta
 from zoneinfo import ZoneInfo
@@ -36,6 +38,7 @@ from service.domain.values import Timeline
 from service.domain.wording import narrate
 from service.notify.bundles import interaction_for
 from service.notify.topics import FLAG_ALERT, FLAG_CHANGED, FLAG_ESCALATED
+from service.ops.metrics import ESCALATIONS, FLAG_CHANGES, after_commit, change_word
 from service.policy import Policy, policy_hash
 
 __all__ = ["Evaluator"]
@@ -53,8 +56,15 @@ class Evaluator:
         self.lab_zone = lab_zone  # collection times are said in it (UTC, said so, when None)
 
     def __call__(self, session: Session, patient_keys: Iterable[str], now: datetime) -> list[FlagWrite]:
-        """Re-evaluate these patients (their locks must be held) and write any Flag changes."""
+        """Re-evaluate these patients (their locks must be held) and write any Flag changes; one log line."""
+        started = time.perf_counter()
         keys = sorted(set(patient_keys))
+        written = self._evaluate(session, keys, now)
+        log.info("evaluation", extra={"trigger": "ingest", "patients": len(keys), "flags_changed": len(written),
+                                      "duration_ms": round((time.perf_counter() - started) * 1000, 1)})
+        return written
+
+    def _evaluate(self, session: Session, keys: list[str], now: datetime) -> list[FlagWrite]:
         end, lookback = self._window(now)
         timelines = load_timelines(session=session, patient_keys=keys, end=end, lookback=lookback)
         opened = open_flags(session=session, patient_keys=keys)
@@ -78,7 +88,14 @@ class Evaluator:
         if paging:  # most new versions page nobody: leave the subscription rows unlocked then
             enqueue_events(session=session, topic=FLAG_ALERT, now=now,
                            flags=[(w.id, w.version_id, interaction_for(w.kind), w.flag) for w in paging])
-        log.info("flags changed: %s; %d paged", ", ".join(sorted({w.kind for w in written})), len(paging))
+        counted = Counter((change_word(w.kind), w.row.rule, w.row.priority) for w in written)
+
+        def count() -> None:
+            for labels, n in counted.items():
+                FLAG_CHANGES.labels(*labels).inc(n)
+
+        after_commit(session, count)
+        log.debug("flags changed: %s; %d paged", ", ".join(sorted({w.kind for w in written})), len(paging))
         return written
 
     def _pages(self, session: Session, written: Sequence[FlagWrite], now: datetime) -> list[FlagWrite]:
@@ -136,17 +153,24 @@ class Evaluator:
                 w = write_event_version(session=session, flag_id=item.flag_id, subject=subject, lead=lead, now=now)
                 event = [(w.id, w.version_id, interaction_for(w.kind), w.flag)]
                 enqueue_events(session=session, topic=FLAG_CHANGED, now=now, flags=event)
-                sent += enqueue_events(session=session, topic=FLAG_ESCALATED, now=now, flags=event)
+                queued = enqueue_events(session=session, topic=FLAG_ESCALATED, now=now, flags=event)
+                after_commit(session, lambda n=queued: ESCALATIONS.inc(n))  # type: ignore[misc]
+                sent += queued
+        if due:
+            log.info("escalation", extra={"due": len(due), "notifications": sent})
         return sent
 
     def recheck(self, db: Database, now: datetime) -> int:
         """The time-driven pass: each candidate patient in its own short unit of work, under its lock,
         so it is safe when several replicas run it (the second finds nothing left to change)."""
+        started = time.perf_counter()
         with db.session() as session:
             keys = patients_to_recheck(session=session, since=now - self.lookback)
         changed = 0
         for key in keys:
             with db.session(write=True) as session:
                 db.lock_patients(session, [key])
-                changed += len(self(session, [key], now))
+                changed += len(self._evaluate(session, [key], now))
+        log.info("evaluation", extra={"trigger": "recheck", "patients": len(keys), "flags_changed": changed,
+                                      "duration_ms": round((time.perf_counter() - started) * 1000, 1)})
         return changed

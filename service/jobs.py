@@ -7,10 +7,15 @@ and writes only what differs from the stored flags, so a second run finds nothin
 from __future__ import annotations
 
 import logging
+import time
 from collections.abc import Callable
-from typing import TYPE_CHECKING
+from datetime import datetime, timedelta, timezone
+from typing import TYPE_CHECKING, Any
 
+from apscheduler.events import EVENT_JOB_SUBMITTED
 from apscheduler.schedulers.background import BackgroundScheduler
+
+from service.ops.metrics import JOB_LAG, JOB_RUNS
 
 if TYPE_CHECKING:
     from service.api.context import AppContext
@@ -66,19 +71,40 @@ _PURGE_SECONDS = 3600.0
 
 
 def run_job(ctx: AppContext, name: str) -> int:
-    changed = JOBS[name](ctx)
-    log.info("job %s: %d flag change(s)", name, changed)
+    """One run of a job: its heartbeat and count whatever happens, one log line."""
+    started = time.perf_counter()
+    try:
+        changed = JOBS[name](ctx)
+    except Exception:
+        JOB_RUNS.labels(name, "error").inc()
+        ctx.heartbeats.beat(name, ctx.clock.now(), ok=False)
+        raise  # APScheduler logs it (exception text withheld by the log set-up)
+    JOB_RUNS.labels(name, "ok").inc()
+    ctx.heartbeats.beat(name, ctx.clock.now(), ok=True)
+    log.debug("job", extra={"job": name, "changed": changed,
+                            "duration_ms": round((time.perf_counter() - started) * 1000, 1)})
     return changed
+
+
+def _interval(ctx: AppContext, name: str) -> float:
+    if name == "purge-retention":
+        return _PURGE_SECONDS
+    return ctx.settings.deliver_seconds if name == "deliver-outbox" else ctx.settings.recheck_seconds
+
+
+def _lag(event: Any) -> None:
+    """How late each run was submitted after its scheduled time (a busy or starved scheduler)."""
+    for scheduled in event.scheduled_run_times:
+        JOB_LAG.labels(event.job_id).observe(max(0.0, (datetime.now(timezone.utc) - scheduled).total_seconds()))
 
 
 def start_scheduler(ctx: AppContext) -> BackgroundScheduler:
     scheduler = BackgroundScheduler(timezone="UTC")
     for name in JOBS:
         # coalesce + one instance: a slow run is never stacked with the next.
-        seconds = ctx.settings.deliver_seconds if name == "deliver-outbox" else ctx.settings.recheck_seconds
-        if name == "purge-retention":
-            seconds = _PURGE_SECONDS
-        scheduler.add_job(run_job, "interval", seconds=seconds, args=(ctx, name), id=name,
+        scheduler.add_job(run_job, "interval", seconds=_interval(ctx, name), args=(ctx, name), id=name,
                           coalesce=True, max_instances=1)
+        ctx.heartbeats.expect(name, timedelta(seconds=_interval(ctx, name)), ctx.clock.now())
+    scheduler.add_listener(_lag, EVENT_JOB_SUBMITTED)
     scheduler.start()
     return scheduler

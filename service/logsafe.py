@@ -9,7 +9,7 @@ database error, its SQLSTATE and constraint name, and drops every message.
 
 ``WithholdExceptionText`` does this to every record a handler emits, whoever logged it (uvicorn's
 "Exception in ASGI application", APScheduler's failed jobs, ours); ``log_config`` is the logging
-set-up `lytestream serve` hands to uvicorn, with that filter on every handler.
+set-up `lytestream serve` hands to uvicorn (JSON lines), with that filter on every handler.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ from typing import Any
 
 from sqlalchemy.exc import DBAPIError
 
-__all__ = ["WithholdExceptionText", "describe", "log_config", "safe_traceback"]
+__all__ = ["DropColour", "WithholdExceptionText", "describe", "log_config", "safe_traceback"]
 
 
 def describe(exc: BaseException) -> str:
@@ -71,30 +71,40 @@ class WithholdExceptionText(logging.Filter):
         return True
 
 
-def log_config() -> dict[str, Any]:
-    """uvicorn's default logging, plus the root logger (ours, APScheduler's) at WARNING on stderr,
-    with exception text withheld on every handler."""
+class DropColour(logging.Filter):
+    """uvicorn adds a ``color_message`` with terminal escapes to some records: noise in a JSON line."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        record.__dict__.pop("color_message", None)
+        return True
+
+
+def log_config(level: str = "info") -> dict[str, Any]:
+    """The logging set-up of `lytestream serve`: JSON lines on stderr for every logger (ours, uvicorn's,
+    APScheduler's) at ``level``, with exception text withheld on every handler. uvicorn's access log is
+    not configured: ``service.api.request_log`` writes one line per request instead, without the raw
+    path or query (a query can carry an identifier)."""
     withhold = {"()": f"{__name__}.WithholdExceptionText"}
     return {
         "version": 1,
         "disable_existing_loggers": False,
-        "filters": {"withhold": withhold},
+        "filters": {"withhold": withhold, "plain": {"()": f"{__name__}.DropColour"}},
         "formatters": {
-            "default": {"()": "uvicorn.logging.DefaultFormatter", "fmt": "%(levelprefix)s %(name)s: %(message)s",
-                        "use_colors": None},
-            "access": {"()": "uvicorn.logging.AccessFormatter",
-                       "fmt": '%(levelprefix)s %(client_addr)s - "%(request_line)s" %(status_code)s'},
+            "json": {"()": "pythonjsonlogger.json.JsonFormatter",
+                     "fmt": "%(asctime)s %(levelname)s %(name)s %(message)s",
+                     "rename_fields": {"asctime": "time", "levelname": "level", "name": "logger"},
+                     "datefmt": "%Y-%m-%dT%H:%M:%S%z"},
         },
         "handlers": {
-            "default": {"formatter": "default", "class": "logging.StreamHandler", "stream": "ext://sys.stderr",
-                        "filters": ["withhold"]},
-            "access": {"formatter": "access", "class": "logging.StreamHandler", "stream": "ext://sys.stdout",
-                       "filters": ["withhold"]},
+            "default": {"formatter": "json", "class": "logging.StreamHandler", "stream": "ext://sys.stderr",
+                        "filters": ["withhold", "plain"]},
         },
         "loggers": {
-            "uvicorn": {"handlers": ["default"], "level": "INFO", "propagate": False},
-            "uvicorn.error": {"level": "INFO"},
-            "uvicorn.access": {"handlers": ["access"], "level": "INFO", "propagate": False},
+            # Their INFO is a line per job run and per readiness probe: noise below debug.
+            "apscheduler": {"level": "DEBUG" if level == "debug" else "WARNING"},
+            "alembic": {"level": "DEBUG" if level == "debug" else "WARNING"},
+            "uvicorn": {"handlers": ["default"], "level": level.upper(), "propagate": False},
+            "uvicorn.access": {"handlers": [], "level": "CRITICAL", "propagate": False},
         },
-        "root": {"handlers": ["default"], "level": "WARNING"},
+        "root": {"handlers": ["default"], "level": level.upper()},
     }

@@ -12,11 +12,12 @@ from urllib.parse import urlsplit
 from zoneinfo import ZoneInfo
 
 import httpx
-from fastapi import FastAPI, Request
+from fastapi import Depends, FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
 from sqlalchemy.exc import DBAPIError
 from starlette.exceptions import HTTPException
+from starlette.routing import Mount
 from starlette.staticfiles import StaticFiles
 
 from service.api.context import AppContext
@@ -24,6 +25,7 @@ from service.api.fhir_io import outcome_response
 from service.api.intake import BodyAborted, BodyIntake
 from service.api.last_resort import LastResort, internal_error
 from service.api.refusals import RefusalAudit, RefusalLimiter
+from service.api.request_log import RequestLog, note_route
 from service.api.routes import audit, board, conformance, flags, ingest, meta, read, subscriptions, summary
 from service.api.wire import FhirWire
 from service.arrivals import ArrivalReview
@@ -87,7 +89,8 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
 
     docs = ctx.settings.api_docs  # off by default: the OpenAPI description answers without a token
     app = FastAPI(title="lytestream", version="0.1.0", docs_url="/docs" if docs else None, redoc_url=None,
-                  openapi_url="/openapi.json" if docs else None, lifespan=lifespan)
+                  openapi_url="/openapi.json" if docs else None, lifespan=lifespan,
+                  dependencies=[Depends(note_route)])
     app.state.ctx = ctx
     app.add_middleware(BodyIntake, max_body_bytes=ctx.settings.max_body_bytes,
                        timeout_s=ctx.settings.body_timeout_seconds, slots=ctx.settings.max_concurrent_bodies)
@@ -164,4 +167,6 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     # Outermost of our middleware: what nothing above handled answers a 500 OperationOutcome there, and is
     # not raised on to the server (which would drop the kept-alive connection).
     app.add_middleware(LastResort)
+    # Outside even that: the request log sees the status the client got, 500s included.
+    app.add_middleware(RequestLog, mounts=tuple(r.path for r in app.routes if isinstance(r, Mount)))
     return app

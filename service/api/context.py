@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Annotated
 
 from fastapi import Depends, Request
@@ -14,6 +14,7 @@ from service.db.engine import Database
 from service.dispatch import Dispatcher
 from service.evaluation import Evaluator
 from service.ingest import Ingestor
+from service.ops.heartbeats import Heartbeats
 from service.policy import Policy
 
 __all__ = ["AppContext", "ContextDep"]
@@ -29,6 +30,7 @@ class AppContext:
     evaluator: Evaluator
     dispatcher: Dispatcher
     refusals: RefusalLimiter  # one per process, shared by every app built on this context
+    heartbeats: Heartbeats = field(default_factory=Heartbeats)  # the scheduler's jobs, for /healthz
 
 
 def _context(request: Request) -> AppContext:

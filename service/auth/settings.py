@@ -43,13 +43,17 @@ class AuthSettings(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    mode: Literal["minted", "jwt", "both"] = "minted"
+    mode: Literal["minted", "jwt", "both"] = Field(
+        default="minted", description="which bearer tokens count: minted (lytestream token create), jwt (the "
+                                      "hospital's authorisation server) or both")
     disabled: bool = Field(default=False, description="TESTS ONLY: no checks at all; refused elsewhere")
-    realm: str = Field(default="lytestream", pattern=r"^[A-Za-z0-9._ -]{1,64}$")
+    realm: str = Field(default="lytestream", pattern=r"^[A-Za-z0-9._ -]{1,64}$",
+                       description="the realm named in WWW-Authenticate challenges")
     issuer: str | None = Field(default=None, description="the authorisation server's `iss`, exactly")
     audience: str | None = Field(default=None, description="our `aud`, usually the public FHIR base URL")
     jwks_url: str | None = Field(default=None, description="the authorisation server's jwks_uri (https)")
-    algorithms: tuple[str, ...] = Field(default=("RS256", "ES256"), min_length=1)
+    algorithms: tuple[str, ...] = Field(default=("RS256", "ES256"), min_length=1,
+                                        description="JWT signature algorithms accepted (asymmetric only)")
     leeway_seconds: int = Field(default=30, ge=0, le=300,
                                 description="clock skew allowed on exp, nbf and iat (a token issued further "
                                             "ahead than this is refused)")
@@ -57,7 +61,7 @@ class AuthSettings(BaseModel):
     jwks_min_refetch_seconds: float = Field(
         default=30.0, ge=0, description="an unknown kid refetches the JWKS at most this often"
     )
-    jwks_timeout_seconds: float = Field(default=5.0, gt=0)
+    jwks_timeout_seconds: float = Field(default=5.0, gt=0, description="one JWKS fetch, at most")
     token_endpoint: str | None = Field(
         default=None, description="the authorisation server's token endpoint, announced by SMART discovery "
                                   "(/.well-known/smart-configuration) and the CapabilityStatement; needed in jwt "

@@ -30,6 +30,8 @@ from sqlalchemy.engine import make_url
 from sqlalchemy.exc import DBAPIError
 from sqlmodel import Session
 
+from service.ops.metrics import WRITER_WAIT
+
 __all__ = ["Database", "StoreBusy", "transient_sqlstate"]
 
 T = TypeVar("T")
@@ -80,7 +82,10 @@ class Database:
     @contextmanager
     def session(self, *, write: bool = False) -> Iterator[Session]:
         """A unit of work: commits on success, rolls back on any exception."""
+        queued = time.perf_counter()
         with self._writer if write and self._writer is not None else nullcontext():
+            if write and self._writer is not None:
+                WRITER_WAIT.observe(time.perf_counter() - queued)
             session = Session(self._write_engine if write else self.engine, expire_on_commit=False)
             try:
                 yield session

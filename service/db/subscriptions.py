@@ -30,6 +30,7 @@ __all__ = [
     "claim_subscriptions",
     "create_subscription",
     "enqueue_events",
+    "delivery_trouble",
     "enqueue_heartbeats",
     "expedite_urgent",
     "hold_lease",
@@ -254,6 +255,14 @@ def record_attempt(*, session: Session, event: Any, ok: bool, status_code: int |
     elif next_at is not None:
         values |= {"next_attempt_at": next_at}
     session.execute(update(_E).where(_E.c.id == event.id).values(**values))
+
+
+def delivery_trouble(*, session: Session, subscription_id: str) -> Any | None:
+    """The oldest unsent row that has already failed: its kind, attempts, last error and next try; None
+    when nothing queued has failed (the pending-rows index covers the scan)."""
+    return session.execute(select(_E.c.kind, _E.c.attempts, _E.c.last_error, _E.c.next_attempt_at)
+                           .where(_E.c.status == "pending", _E.c.subscription_id == subscription_id,
+                                  _E.c.attempts > 0).order_by(_E.c.id).limit(1)).first()
 
 
 def events_between(*, session: Session, subscription_id: str, since: int | None, until: int | None) -> Sequence[Any]:

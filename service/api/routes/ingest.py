@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+from collections import Counter
 from dataclasses import replace
 from typing import Any
 
@@ -21,6 +22,7 @@ from service.db.reads import read_version
 from service.errors import Issue, RequestRejected
 from service.fhir.render import operation_outcome, response_bundle
 from service.ingest import EntryRequest, EntryResult
+from service.ops.metrics import INGEST_RESULTS
 
 router = APIRouter()
 log = logging.getLogger("lytestream.auth")
@@ -47,7 +49,12 @@ async def post_bundle(request: Request, ctx: ContextDep, who: RequesterDep, call
             refusal = update_refusal(caller, str(rtype))
             e.update_refused = refusal.at(e.root.removesuffix(".resource")) if refusal else None
     ingest = ctx.ingestor.transaction if kind == "transaction" else ctx.ingestor.batch
-    results = await run_in_threadpool(ingest, entries, raw=raw, requester=who)
+    try:
+        results = await run_in_threadpool(ingest, entries, raw=raw, requester=who)
+    except RequestRejected:
+        _note_results(request, who.client, [], refused=len(entries))  # a transaction refused whole
+        raise
+    _note_results(request, who.client, results)
     want = prefer_return(request, "minimal")
     bundle = response_bundle(kind, results, representation=want == "representation", now=ctx.clock.now())
     return fhir_response(bundle)
@@ -134,6 +141,7 @@ async def _write(request: Request, ctx: ContextDep, who: RequesterDep, caller: P
             return auth_outcome_response(forbidden(needed_scope(rtype, frozenset("cu"))),
                                          realm=ctx.settings.auth.realm)
         raise
+    _note_results(request, who.client, [result])
     if (result.body is None and result.location and caller.allows(rtype, "r")
             and prefer_return(request, "representation") == "representation"):
         # Nothing new was written (a resend, a stale version, a matched If-None-Exist): answer with the version
@@ -142,6 +150,28 @@ async def _write(request: Request, ctx: ContextDep, who: RequesterDep, caller: P
         with ctx.db.session() as session:
             result.body = read_version(session=session, resource_type=rtype, rid=rid, version=version)
     return _single_response(request, result, ctx.settings.base_url)
+
+
+def _outcome(result: EntryResult) -> str:
+    """What became of one entry, in a word (a metric label and a log count)."""
+    if result.status >= 400:
+        return "refused"
+    if result.location is None:
+        return "suspect-code" if result.suspect_drop else "not-watched"
+    if result.status == 201:
+        return "created"
+    return "updated" if result.body else "unchanged"
+
+
+def _note_results(request: Request, client: str, results: list[EntryResult], refused: int = 0) -> None:
+    """Count the entries by outcome: for the request's log line and the ingest metric."""
+    counts = Counter(_outcome(r) for r in results)
+    if refused:
+        counts["refused"] += refused
+    request.state.entries = len(results) + refused
+    request.state.results = dict(sorted(counts.items()))
+    for outcome, n in counts.items():
+        INGEST_RESULTS.labels(outcome, client).inc(n)
 
 
 def _single_response(request: Request, result: EntryResult, base_url: str) -> Response:

@@ -8,6 +8,7 @@ subscriber needs that scope when it reads the Flags named (``GET Flag/{id}`` che
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 import orjson
@@ -30,6 +31,7 @@ from service.db.subscriptions import (
     DELETED,
     WITHHELD,
     create_subscription,
+    delivery_trouble,
     events_between,
     flag_version,
     keep_withheld_headers,
@@ -45,6 +47,7 @@ from service.notify.bundles import NotificationEvent, events_response, status_re
 from service.notify.topics import CONTENT_CODES, SubscriptionSpec, parse_subscription
 
 router = APIRouter()
+log = logging.getLogger("lytestream.subscriptions")
 _S = SubscriptionRecord.__table__  # type: ignore[attr-defined]
 _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 
@@ -175,6 +178,9 @@ async def replace(sid: str, request: Request, ctx: ContextDep, who: RequesterDep
                 error=None if status == "requested" else row.error, version_id=row.version_id + 1,
                 last_updated=now))
             _audit(ctx, session, who, "update", sid, row.version_id + 1)
+            if status != row.status:
+                log.info("subscription state", extra={"subscription": sid, "from": row.status, "to": status,
+                                                      "by": who.client})
             return served_subscription(_row(session, sid))
 
     return fhir_response(await run_in_threadpool(run))
@@ -201,7 +207,9 @@ def delete(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
 @router.get("/fhir/Subscription/{sid}/$status", dependencies=[Depends(require("Subscription", "r"))])
 def status(sid: str, ctx: ContextDep, who: RequesterDep) -> Response:
     with ctx.db.session() as session:
-        state = subscription_state(_owned_row(session, sid, who), ctx.settings.base_url)
+        row = _owned_row(session, sid, who)
+        state = subscription_state(row, ctx.settings.base_url,
+                                   trouble=delivery_trouble(session=session, subscription_id=sid))
     return fhir_response(status_response([state], now=ctx.clock.now()))
 
 
