@@ -110,7 +110,8 @@ def audit_event(f: AuditFacts, *, base_url: str) -> dict[str, Any]:
             "description": "request summary",
             "detail": [{"type": k, "valueString": v} for k, v in sorted(f.details.items())],
         })
-    entities.append(_request_id(f.requester.request_id))
+    if f.requester.request_id:  # none for what the service does on its own (a delivery answers no request)
+        entities.append(_request_id(f.requester.request_id))
     event: dict[str, Any] = {
         "resourceType": "AuditEvent",
         "meta": {"profile": [f"{BALP}/IHE.BasicAudit.{profile}"]},

@@ -105,3 +105,19 @@ def test_events_fetched_with_full_resources_are_audited_per_patient(
         assert event["meta"]["profile"][0].endswith("IHE.BasicAudit.PatientQuery")
     assert {w.get("reference") for e in events for w in [x.get("what", {}) for x in e["entity"]]} >= {
         "Patient/p1", "Patient/p2"}
+
+
+def test_an_event_the_service_records_of_its_own_accord_carries_no_empty_request_id() -> None:
+    # FHIR R4 string: "Strings SHALL NOT be empty" (datatypes, string). A delivery or a scheduled job
+    # answers no inbound request, so it has no request id to record, and must not record an empty one.
+    from datetime import UTC, datetime
+
+    from service.fhir.audit_render import AuditFacts, Requester, audit_event
+
+    for subtype in ("disclose", "purge", "operation"):
+        event = audit_event(AuditFacts(subtype=subtype, recorded=datetime(2026, 3, 2, tzinfo=UTC),
+                                       requester=Requester(client="scheduler", address=None, request_id=""),
+                                       what=["Flag/f/_history/1"], patient={"reference": "Patient/p1"}),
+                            base_url="http://testserver/fhir")
+        values = [e["what"]["identifier"]["value"] for e in event["entity"] if "identifier" in e.get("what", {})]
+        assert all(v.strip() for v in values), subtype
