@@ -22,6 +22,7 @@ closes or the run ends. Decision support only.
 
 from __future__ import annotations
 
+import bisect
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
@@ -158,6 +159,9 @@ class _Store:
         self.results: dict[str, LabResult] = {}
         self.exposures: dict[str, InsulinExposure] = {}
         self._next = 0
+        # The current results' collection times, sorted, with their ids: a window is two bisections.
+        self._times: list[datetime] = []
+        self._ids: list[str] = []
 
     def advance(self, now: tuple[datetime, int]) -> list[LabResult | InsulinExposure]:
         """Take in every version arrived by ``now`` (instant, unit of work); returns those that arrived
@@ -166,6 +170,13 @@ class _Store:
         while self._next < len(self.items) and self.items[self._next][0] <= now:
             item = self.items[self._next][2]
             if isinstance(item, LabResult):
+                previous = self.results.get(item.observation_id)
+                if previous is None or previous.effective != item.effective:
+                    if previous is not None:
+                        self._drop(previous)
+                    i = bisect.bisect_right(self._times, item.effective)
+                    self._times.insert(i, item.effective)
+                    self._ids.insert(i, item.observation_id)
                 self.results[item.observation_id] = item
             else:
                 self.exposures[item.source_id] = item
@@ -173,9 +184,16 @@ class _Store:
             self._next += 1
         return arrived
 
+    def _drop(self, result: LabResult) -> None:
+        i = bisect.bisect_left(self._times, result.effective)
+        while self._ids[i] != result.observation_id:
+            i += 1
+        del self._times[i], self._ids[i]
+
     def timeline(self, low: datetime, high: datetime) -> Timeline:
         """Current usable results collected in (low, high] and exposures overlapping it."""
-        rows = [r for r in self.results.values() if low < r.effective <= high]
+        lo, hi = bisect.bisect_right(self._times, low), bisect.bisect_right(self._times, high)
+        rows = [self.results[rid] for rid in self._ids[lo:hi]]
         replaced = {self.replaces[r.reference] for r in rows
                     if r.reference in self.replaces and r.status is not ResultStatus.ENTERED_IN_ERROR}
         withdrawn = {f"Observation/{r.observation_id}" for r in rows if r.status is ResultStatus.ENTERED_IN_ERROR}
