@@ -92,7 +92,8 @@ def _operation_definitions() -> list[dict[str, Any]]:
                    _out("range", "string", "how the range is read"),
                    _out("flags_raised", "integer", "Flags whose first version was written in the range"),
                    _by("flags_by_rule", "those Flags by rule code"),
-                   _by("flags_by_priority", "those Flags by priority (high, medium, low)"),
+                   _by("flags_by_priority", "those Flags by the priority they were raised with: PH (High "
+                       "priority), PM (Medium priority), PL (Low priority)"),
                    _out("alert_burden", None, "Flags per result and per patient-day", [
                        _out("results_stored", "integer", "results first stored in the range"),
                        _out("patient_days", "integer", "distinct (patient, UTC date) with a result"),
@@ -111,11 +112,12 @@ def _operation_definitions() -> list[dict[str, Any]]:
                    _out("escalations", None, "escalation rounds", [
                        _out("count", "integer", "escalation events"),
                        _out("flags_escalated", "integer", "distinct Flags escalated")]),
-                   _out("notifications", None, "the outbox in the range", [
+                   _out("notifications", None, "notifications queued for subscribers in the range", [
                        _out(n, "integer", d) for n, d in (
-                           ("outbox_rows", "rows written"), ("delivered", "rows sent"),
-                           ("retried", "rows sent after a failed try"), ("failed", "rows given up"),
-                           ("pending", "rows not yet sent"), ("attempts", "sends tried"))]),
+                           ("count", "notifications queued"), ("delivered", "notifications delivered"),
+                           ("retried", "delivered or given up after a failed try"),
+                           ("failed", "notifications given up"), ("pending", "notifications not yet sent"),
+                           ("attempts", "delivery tries in all"))]),
                    _by("audit_events_by_subtype", "AuditEvents recorded in the range by subtype"),
                    _out("definitions", None, "what each figure counts; one valueString part per term",
                         [_param("(term)", "out", "string", "its definition", max_="*")]),
