@@ -27,12 +27,14 @@ def canonical(rtype: str, rid: str) -> str:
     return f"{CANONICAL_BASE}/{rtype}/{rid}"
 
 
-def _search_parameter(code: str, kind: str, expression: str, description: str,
+def _search_parameter(code: str, kind: str, expression: str | None, description: str,
                       **extra: Any) -> dict[str, Any]:
+    """``expression`` None: the value is kept beside the Flag (the acknowledgements), not in its elements."""
     rid = f"Flag-{code}"
+    where = {"expression": expression} if expression else {}
     return {"resourceType": "SearchParameter", "id": rid, "url": canonical("SearchParameter", rid),
-            "name": f"Flag{code.capitalize()}", **_COMMON, "description": description, "code": code,
-            "base": ["Flag"], "type": kind, "expression": expression, **extra}
+            "name": "Flag" + "".join(part.capitalize() for part in code.split("-")), **_COMMON,
+            "description": description, "code": code, "base": ["Flag"], "type": kind, **where, **extra}
 
 
 def _param(name: str, use: str, kind: str | None, doc: str, min_: int = 0, max_: str = "1",
@@ -140,6 +142,14 @@ def _search_parameters() -> list[dict[str, Any]]:
                           "_include=Flag:detail returns them; detail=Observation/[id] finds the Flags citing any "
                           "version of that result.",
                           target=["Observation", "MedicationAdministration"]),
+        _search_parameter("acknowledged", "token", None,
+                          "Whether an acknowledgement ($acknowledge) is recorded for the Flag: true | false. "
+                          "acknowledged=false finds the Flags nobody acknowledged."),
+        _search_parameter("acknowledged-after", "number", None,
+                          "Minutes from the Flag's raising to its first acknowledgement, with the number "
+                          "prefixes eq, gt, ge, lt, le (repeats are ANDed): acknowledged-after=gt30 finds the "
+                          "Flags first acknowledged more than 30 minutes after they were raised. A Flag never "
+                          "acknowledged matches no value.", comparator=["eq", "gt", "ge", "lt", "le"]),
     ]
 
 
