@@ -27,10 +27,12 @@ def backtest_command(
                                               "(default: the first stored arrival)")] = None,
     end: Annotated[str | None, typer.Option(help="range end, excluded (default: just after the last arrival)")]
     = None,
-    out: Annotated[Path, typer.Option(help="directory for the CSV tables and summary.json")]
+    out: Annotated[Path, typer.Option(help="directory for the CSV tables, summary.json and report.html")]
     = Path("backtest-report"),
     feed: Annotated[Path | None, typer.Option(help="FHIR NDJSON feed to backtest instead of the store",
                                               exists=True, dir_okay=False)] = None,
+    html: Annotated[bool, typer.Option(help="also write report.html with plots (one file, works offline)")]
+    = True,
     workers: Annotated[int, typer.Option(min=1, max=64, help="worker processes (one per core)")] = 1,
     tick_minutes: Annotated[float, typer.Option(min=1, help="recheck interval while insulin is recorded")] = 15,
     database_url: Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
@@ -71,6 +73,10 @@ def backtest_command(
                        workers=workers)
         comparison = run_backtest(job)
     written = write_all(comparison, out)
+    if html:
+        from service.backtest.report import write_report
+
+        written.append(write_report(comparison, out))
     b, c = comparison.baseline.total, comparison.candidate.total
     typer.echo(f"{comparison.results_stored} results, {comparison.patient_days} patient-days: baseline "
                f"{b.flags} Flags, candidate {c.flags} Flags "

@@ -155,3 +155,13 @@ def test_tables_are_written_with_priority_codes_and_display(comparison: Comparis
     summary = orjson.loads((tmp_path / "summary.json").read_bytes())
     assert (summary["flags_gained"], summary["flags_lost"]) == (2, 1)
     assert "no Flag was ever acknowledged" in " ".join(summary["assumptions"])
+
+
+def test_the_html_report_is_one_offline_file_with_both_plots(comparison: Comparison, tmp_path: Path) -> None:
+    from service.backtest.report import write_report
+
+    html = write_report(comparison, tmp_path).read_text("utf-8")
+    assert html.count('src="data:image/png;base64,') == 2  # embedded: no file or network fetch
+    assert "http://" not in html.replace("http://hl7.org", "") and "https://" not in html
+    assert "Decision support" in html or "decision support" in html
+    assert "2 gained, 1 lost" in html
