@@ -75,6 +75,7 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                                    "(others need our scope lytestream/admin).",
                 },
                 "interaction": [{"code": "transaction"}, {"code": "batch"}],
+                "operation": [{"name": "backtest", "definition": f"{CANONICAL_BASE}/OperationDefinition/backtest"}],
                 "resource": [
                     {
                         "type": "Observation",

@@ -125,7 +125,25 @@ def _operation_definitions() -> list[dict[str, Any]]:
                         [_param("(term)", "out", "string", "its definition", max_="*")]),
                    _out("caution", "string", "decision support only"),
                ]}
-    return [ack, summary]
+    backtest = {"resourceType": "OperationDefinition", "id": "backtest",
+                "url": canonical("OperationDefinition", "backtest"), "name": "Backtest", **_COMMON,
+                "kind": "operation", "affectsState": False, "code": "backtest", "system": True, "type": False,
+                "instance": False,
+                "description": "Re-evaluate the stored history of [start, end) under a candidate policy and the "
+                               "baseline with the live rules on a simulated clock, and compare them. "
+                               "Asynchronous: 202 with Content-Location naming a status URL "
+                               "([base]/$backtest-status/[id]) that answers 202 while it runs and 200 with the "
+                               "figures when done; counts and times only. " + CAUTION,
+                "parameter": [
+                    _param("start", "in", "string", "range start, included: YYYY-MM-DD or an instant with offset", 1),
+                    _param("end", "in", "string", "range end, excluded", 1),
+                    _param("policy", "in", "string", "the candidate policy, TOML text (as policy check reads it)", 1),
+                    _param("baseline", "in", "string", "the baseline policy, TOML text; default the policy in force"),
+                    _param("return", "out", "Parameters", "when done: per policy Flags raised, patients affected, "
+                           "burden, result → Flag median and p90 (nearest rank), escalations if never "
+                           "acknowledged, Flags by rule and raised priority; Flags gained and lost by rule", 1),
+                ]}
+    return [ack, summary, backtest]
 
 
 def _search_parameters() -> list[dict[str, Any]]:
