@@ -11,7 +11,8 @@ Definitions (the same as ``$summary``'s, service.summary):
   Flag first cited. Median and p90 are **nearest-rank** (service.summary.nearest_rank).
 * Gained = a Flag (patient, rule, episode) the candidate raises in the range and the baseline never
   raised; lost = the reverse.
-* Escalations = rounds that would have been sent in the range had **nobody acknowledged any Flag**.
+* Escalations = rounds that would have been sent in the range had **nobody acknowledged any Flag**
+  (counted by the engine from the range's start).
 """
 
 from __future__ import annotations
@@ -83,7 +84,7 @@ def _row(rule: str, priority: str, flags: Sequence[SimFlag], results: int, patie
         per_1000_results=n * 1000 / results if results else None,
         per_patient_day=n / patient_days if patient_days else None,
         median_seconds=nearest_rank(latencies, 50), p90_seconds=nearest_rank(latencies, 90),
-        escalations=sum(1 for f in flags for t in f.escalations if _in(t, start, end)),
+        escalations=sum(f.escalations for f in flags),
     )
 
 

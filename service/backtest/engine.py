@@ -74,7 +74,7 @@ class SimFlag:
     priority: Priority  # the newest
     closed_at: datetime | None = None
     closed_how: str | None = None  # "closed" (no longer found) | "withdrawn" (evidence entered in error)
-    escalations: list[datetime] = field(default_factory=list)
+    escalations: int = 0  # rounds that fell in the counting range (simulate's ``count_from`` to its end)
     _id: str = ""
     _since: datetime | None = None  # when its current priority began (escalation rounds count from it)
 
@@ -95,12 +95,13 @@ class PatientRun:
 
 
 def simulate(history: History, policy: Policy, *, lookback: timedelta, end: datetime,
-             tick: timedelta = timedelta(minutes=15)) -> PatientRun:
+             tick: timedelta = timedelta(minutes=15), count_from: datetime | None = None) -> PatientRun:
     """Re-evaluate ``history`` under ``policy`` at every moment the live path would have, up to ``end``
-    (excluded); returns every Flag raised (including before any reporting range: the caller filters)."""
+    (excluded); returns every Flag raised (including before any reporting range: the caller filters).
+    Escalation rounds are counted from ``count_from`` (default: all)."""
     ahead = timedelta(minutes=policy.timing.future_tolerance_minutes)
     late_after = timedelta(minutes=policy.timing.late_note_after_minutes)
-    after = {p: timedelta(minutes=m) for p, m in policy.escalation.after_minutes.items()}
+    after = _Rounds({p: timedelta(minutes=m) for p, m in policy.escalation.after_minutes.items()}, count_from)
     state = _Store(history, end)
     if not state.arrivals:
         return PatientRun(history.patient, (), 0)
@@ -275,7 +276,7 @@ def _insulin_ticks(first: datetime | None, tick: timedelta, end: datetime) -> li
 
 def _apply(changes: Iterable[object], now: datetime, flags: dict[tuple[str, str, str], SimFlag],
            open_: dict[str, tuple[OpenFlag, SimFlag]], by_reference: Mapping[str, LabResult],
-           after: dict[Priority, timedelta]) -> None:
+           after: _Rounds) -> None:
     for change in changes:
         if isinstance(change, CreateFlag):
             f = change.finding
@@ -313,16 +314,25 @@ def _open(flag_id: str, f: Finding) -> OpenFlag:
                     encounter=f.encounter)
 
 
-def _escalations(sim: SimFlag, until: datetime, after: dict[Priority, timedelta]) -> None:
-    """The rounds an unacknowledged Flag would have escalated at its current priority before ``until``."""
-    interval = after.get(sim.priority)
-    if interval is None or sim._since is None:
+@dataclass(frozen=True, slots=True)
+class _Rounds:
+    """Escalation intervals per priority, and where counting starts."""
+
+    interval: Mapping[Priority, timedelta]
+    count_from: datetime | None
+
+
+def _escalations(sim: SimFlag, until: datetime, after: _Rounds) -> None:
+    """Add the rounds an unacknowledged Flag would have escalated at its current priority before ``until``
+    (round k falls k intervals after its priority began), those before ``count_from`` left out."""
+    interval = after.interval.get(sim.priority)
+    since, sim._since = sim._since, None
+    if interval is None or since is None or until <= since:
         return
-    t = sim._since + interval
-    while t < until:
-        sim.escalations.append(t)
-        t += interval
-    sim._since = None
+    last = -((since - until) // interval) - 1  # the last k with since + k x interval < until
+    first = 1 if after.count_from is None or after.count_from <= since \
+        else max(1, -((since - after.count_from) // interval))  # the first k at or after count_from
+    sim.escalations += max(0, last - first + 1)
 
 
 def _evidence_time(f: Finding, by_reference: Mapping[str, LabResult]) -> datetime | None:

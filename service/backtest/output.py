@@ -73,7 +73,7 @@ def _flag_cells(name: str, f: SimFlag, start: Any, end: Any) -> list[object]:
     return [name, f.patient, f.rule, raised, PRIORITY_DISPLAY[raised], fhir_instant(f.raised_at),
             f.seconds_result_to_flag, latest, PRIORITY_DISPLAY[latest],
             fhir_instant(f.closed_at) if f.closed_at else None, f.closed_how or "open at the end",
-            sum(1 for t in f.escalations if start <= t < end), f.sentence]
+            f.escalations, f.sentence]
 
 
 def flags_csv(c: Comparison) -> str:

@@ -64,7 +64,8 @@ def _run_chunk(job: Backtest, keys: Sequence[str]) -> _ChunkResult:
         r, d = burden_denominators(history.stored, job.start, job.end)
         results, patient_days = results + r, patient_days + d
         for policy, into in ((job.baseline, base), (job.candidate, cand)):
-            run = simulate(history, policy, lookback=job.lookback, end=job.end, tick=job.tick)
+            run = simulate(history, policy, lookback=job.lookback, end=job.end, tick=job.tick,
+                           count_from=job.start)
             into.extend(run.flags)
             evaluations += run.evaluations
     return _ChunkResult(base, cand, results, patient_days, evaluations)

@@ -136,7 +136,7 @@ def test_escalations_assume_no_acknowledgement(comparison: Comparison) -> None:
     rows = {(r.rule, r.priority): r for r in comparison.candidate.rows}
     bt_b = [f for f in comparison.candidate.flags if f.rule == "potassium-critical-high"
             and f.raised_at == datetime(2026, 4, 1, 10, 30, tzinfo=UTC)]
-    assert len(bt_b) == 1 and len(bt_b[0].escalations) == 149
+    assert len(bt_b) == 1 and bt_b[0].escalations == 149
     assert rows[("potassium-critical-high", "PH")].flags == 2
 
 
