@@ -10,6 +10,7 @@ from rich.console import Console
 
 from service.audit_cli import audit_app
 from service.auth.cli import token_app
+from service.backtest.cli import backtest_command
 from service.config import Settings
 from service.ops.startup import database_fault, policy_fault
 
@@ -21,6 +22,7 @@ policy_app = typer.Typer(help="Site policy (thresholds).", no_args_is_help=True)
 app.add_typer(policy_app, name="policy")
 app.add_typer(token_app, name="token")
 app.add_typer(audit_app, name="audit")
+app.command("backtest")(backtest_command)
 console = Console(stderr=True)
 
 # Addresses that mean "every interface": serving on them needs the public base URL spelled out.

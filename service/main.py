@@ -26,7 +26,7 @@ from service.api.intake import BodyAborted, BodyIntake
 from service.api.last_resort import LastResort, internal_error
 from service.api.refusals import RefusalAudit, RefusalLimiter
 from service.api.request_log import RequestLog, note_route
-from service.api.routes import audit, board, conformance, flags, ingest, meta, read, subscriptions, summary
+from service.api.routes import audit, backtest, board, conformance, flags, ingest, meta, read, subscriptions, summary
 from service.api.wire import FhirWire
 from service.arrivals import ArrivalReview
 from service.auth.deps import Authenticator, install_auth
@@ -102,6 +102,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app.include_router(meta.router)
     app.include_router(conformance.router)  # before read.router, like summary
     app.include_router(summary.router)  # before read.router: /fhir/Flag/$summary is not a Flag id
+    app.include_router(backtest.router)  # before read and ingest: /fhir/$backtest is no resource type
     app.include_router(ingest.router)
     app.include_router(flags.router)
     app.include_router(audit.router)

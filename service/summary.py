@@ -7,7 +7,7 @@ Two kinds of figure, kept apart on purpose:
   burden numerator, both latencies, acknowledgements and escalations are about this cohort (its
   acknowledgements and escalations are counted whenever they happened, up to the time of the report), so
   the per-Flag export rows add up to the summary.
-* **Activity in the range** — results stored, patient-days, outbox rows and AuditEvents whose own time
+* **Activity in the range** — results stored, patient-days, notifications and AuditEvents whose own time
   falls in [start, end).
 
 Where each figure comes from (so an analyst can recount it by hand):
@@ -60,6 +60,7 @@ from datetime import UTC, date, datetime
 from typing import Any
 
 from service.fhir.render import CAUTION, fhir_instant
+from service.vocabulary import PRIORITY_DISPLAY, priority_code
 
 __all__ = [
     "AckFact",
@@ -97,6 +98,9 @@ class FlagVersionFact:
     patient_key: str
     period_start: datetime
     evidence: tuple[str, ...]  # version-specific references, e.g. "Observation/<id>/_history/<v>"
+    sentence: str = ""  # Flag.code.text
+    period_end: datetime | None = None
+    subject: str = ""  # Flag.subject as served: a reference, else identifier "system|value"
 
 
 @dataclass(frozen=True, slots=True)
@@ -106,6 +110,9 @@ class EvidenceFact:
     reference: str  # "Observation/<id>/_history/<v>"
     issued: datetime | None  # that version's issued, if it had one
     arrived: datetime  # last_updated of the Observation's version 1
+    value: str | None = None  # valueQuantity.value as the feed wrote it (118, 118.0 and 1.18e2 stay apart)
+    unit: str | None = None  # valueQuantity.unit (else .code) as the feed sent it
+    effective: datetime | None = None  # collection time (orders the cited results)
 
 
 @dataclass(frozen=True, slots=True)
@@ -124,6 +131,8 @@ class AckFact:
 
     flag_id: str
     acknowledged_at: datetime
+    by: str = ""  # the acknowledging client, as recorded
+    note: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -172,7 +181,7 @@ class FlagLine:
 
     flag_id: str
     rule: str
-    priority: str
+    priority: str  # as raised (first version): high | medium | low
     status: str  # of the newest version
     patient_key: str
     raised_at: datetime  # first version written
@@ -182,6 +191,17 @@ class FlagLine:
     first_acknowledged_at: datetime | None
     seconds_flag_to_ack: float | None
     escalations: int
+    current_priority: str = ""  # of the newest version
+    sentence_as_raised: str = ""
+    sentence_latest: str = ""
+    value: str | None = None  # of the latest-collected result the first version cites, as sent
+    unit: str | None = None
+    acknowledged_by: str | None = None  # first acknowledgement
+    acknowledgement_note: str | None = None
+    closed_at: datetime | None = None  # period end of the newest version, when it is not active
+    closed_why: str | None = None
+    evidence: tuple[str, ...] = ()  # the first version's evidence references
+    subject: str = ""  # the patient as the Flag names it (a reference or identifier sent by the feed)
 
 
 @dataclass(frozen=True, slots=True)
@@ -265,6 +285,24 @@ def _evidence_time(refs: Sequence[str], known: Mapping[str, EvidenceFact]) -> tu
     return max(times, key=lambda t: t[0]) if times else None
 
 
+def _shown_result(refs: Sequence[str], known: Mapping[str, EvidenceFact]) -> EvidenceFact | None:
+    """The latest-collected cited result with a value: the one a Flag's value and unit are taken from."""
+    cited = [f for ref in refs if (f := known.get(ref)) is not None and f.value is not None]
+    return max(cited, key=lambda f: (f.effective or f.arrived, f.reference)) if cited else None
+
+
+def _closed_why(versions: Sequence[FlagVersionFact]) -> str | None:
+    """Why the newest version is not active, in words (None while it is active)."""
+    newest = versions[-1]
+    if newest.status == "entered-in-error":
+        return "withdrawn: the results it rested on were entered in error"
+    if newest.status != "inactive":
+        return None
+    if len(versions) == 1:
+        return "raised closed: a late result judged in its own past window"
+    return "closed: the rule no longer finds it"
+
+
 def flag_lines(facts: SummaryFacts, *, start: datetime, end: datetime) -> list[FlagLine]:
     """The cohort: one line per Flag whose first version was written in [start, end), oldest first."""
     _check_range(start, end)
@@ -272,7 +310,7 @@ def flag_lines(facts: SummaryFacts, *, start: datetime, end: datetime) -> list[F
     for v in facts.flag_versions:
         versions.setdefault(v.flag_id, []).append(v)
     known = {e.reference: e for e in facts.evidence}
-    acks = {a.flag_id: a.acknowledged_at for a in facts.first_acks}
+    acks = {a.flag_id: a for a in facts.first_acks}
     escalated = Counter(e.flag_id for e in facts.escalations)
     lines: list[FlagLine] = []
     for flag_id, vs in versions.items():
@@ -282,7 +320,9 @@ def flag_lines(facts: SummaryFacts, *, start: datetime, end: datetime) -> list[F
         if first.version_id != 1 or not _within(first.written_at, start, end):
             continue
         ev = _evidence_time(first.evidence, known)
-        acked = acks.get(flag_id)
+        ack = acks.get(flag_id)
+        acked = ack.acknowledged_at if ack else None
+        shown = _shown_result(first.evidence, known)
         lines.append(FlagLine(
             flag_id=flag_id, rule=first.rule, priority=first.priority, status=newest.status,
             patient_key=first.patient_key, raised_at=first.written_at,
@@ -291,6 +331,11 @@ def flag_lines(facts: SummaryFacts, *, start: datetime, end: datetime) -> list[F
             first_acknowledged_at=acked,
             seconds_flag_to_ack=(acked - first.written_at).total_seconds() if acked else None,
             escalations=escalated.get(flag_id, 0),
+            current_priority=newest.priority, sentence_as_raised=first.sentence, sentence_latest=newest.sentence,
+            value=shown.value if shown else None, unit=shown.unit if shown else None,
+            acknowledged_by=ack.by if ack else None, acknowledgement_note=ack.note if ack else None,
+            closed_at=newest.period_end if newest.status != "active" else None,
+            closed_why=_closed_why(vs), evidence=first.evidence, subject=first.subject,
         ))
     lines.sort(key=lambda line: (line.raised_at, line.flag_id))
     return lines
@@ -363,7 +408,7 @@ def summary_json(s: Summary) -> dict[str, Any]:
         "range": "[start, end): start included, end excluded",
         "flags_raised": s.flags_raised,
         "flags_by_rule": s.by_rule,
-        "flags_by_priority": s.by_priority,
+        "flags_by_priority": {priority_code(k): v for k, v in s.by_priority.items()},
         "alert_burden": {
             "results_stored": s.results_stored,
             "patient_days": s.patient_days,
@@ -376,11 +421,16 @@ def summary_json(s: Summary) -> dict[str, Any]:
         "result_to_flag": _latency_json(s.result_to_flag),
         "flag_to_acknowledgement": {**_latency_json(s.flag_to_ack), "unacknowledged": s.unacknowledged},
         "escalations": {"count": s.escalations, "flags_escalated": s.flags_escalated},
-        "notifications": {"outbox_rows": n.rows, "delivered": n.delivered, "retried": n.retried,
+        "notifications": {"count": n.rows, "delivered": n.delivered, "retried": n.retried,
                           "failed": n.failed, "pending": n.pending, "attempts": n.attempts},
         "audit_events_by_subtype": s.audit_events,
         "definitions": {
-            "cohort": "Flags whose first version was written in the range; each counts once",
+            "cohort": "Flags whose first version was written in the range; each counts once, under the "
+                      "priority it was raised with",
+            "priority": PRIORITY_DISPLAY,
+            "notifications": "notifications queued for subscribers in the range (handshakes, heartbeats and "
+                             "events), with how many were delivered, retried, given up (failed) or still "
+                             "pending, and the delivery tries in all",
             "patient_day": "a distinct (patient, UTC calendar date) with at least one result first stored "
                            "in the range",
             "evidence_time": "latest, among the cited Observation versions, of issued (else first arrival)",

@@ -26,7 +26,7 @@ from tests.conftest import authorised_client
 from tests.factories import HEADERS, bundle, dumps, observation
 
 runner = CliRunner()
-RANGE = ["--from", "2026-03-02", "--to", "2026-03-03"]
+RANGE = ["--start", "2026-03-02", "--end", "2026-03-03"]
 
 
 @pytest.fixture
@@ -57,10 +57,10 @@ def test_export_writes_one_row_per_flag_with_its_times(store: tuple[str, AppCont
     result = runner.invoke(audit_app, ["export", *RANGE, "--database-url", url])
     assert result.exit_code == 0, result.output
     (row,) = rows(result.stdout)
-    assert {k: row[k] for k in ("rule", "priority", "status", "raised_at", "evidence_at", "evidence_source",
+    assert {k: row[k] for k in ("rule", "raised_priority", "status", "raised_at", "evidence_at", "evidence_source",
                                 "seconds_result_to_flag", "first_acknowledged_at", "seconds_flag_to_ack",
                                 "escalations")} == {
-        "rule": "sodium-critical-low", "priority": "high", "status": "active",
+        "rule": "sodium-critical-low", "raised_priority": "PH", "status": "active",
         "raised_at": "2026-03-02T12:00:00Z", "evidence_at": "2026-03-02T11:50:00Z",
         "evidence_source": "issued",
         "seconds_result_to_flag": "600.0", "first_acknowledged_at": "2026-03-02T12:07:00Z",
@@ -79,7 +79,7 @@ def test_export_to_a_file_has_the_header_and_no_row_outside_the_range(store: tup
                                                                       tmp_path: Path) -> None:
     url, _ = store
     out = tmp_path / "flags.csv"
-    result = runner.invoke(audit_app, ["export", "--from", "2026-03-03", "--to", "2026-03-04",
+    result = runner.invoke(audit_app, ["export", "--start", "2026-03-03", "--end", "2026-03-04",
                                        "--database-url", url, "--out", str(out)])
     assert result.exit_code == 0, result.output
     assert out.read_text().splitlines() == [",".join(CSV_COLUMNS)]
@@ -95,7 +95,7 @@ def test_summary_prints_json_with_the_caution(store: tuple[str, AppContext]) -> 
 
 def test_a_backwards_range_exits_2(store: tuple[str, AppContext]) -> None:
     url, _ = store
-    backwards = ["--from", "2026-03-03", "--to", "2026-03-02"]
+    backwards = ["--start", "2026-03-03", "--end", "2026-03-02"]
     result = runner.invoke(audit_app, ["export", *backwards, "--database-url", url])
     assert result.exit_code == 2
 
@@ -109,3 +109,34 @@ def test_summary_counts_results_stored_but_not_evaluated(store: tuple[str, AppCo
     assert result.exit_code == 0, result.output
     body = orjson.loads(result.stdout)
     assert body["results_not_evaluated"] == {"count": 1, "by_reason": {"no-numeric-value": 1}}
+
+
+def test_export_with_identifiers_adds_the_references_the_feed_sent(store: tuple[str, AppContext]) -> None:
+    url, _ = store
+    result = runner.invoke(audit_app, ["export", *RANGE, "--with-identifiers", "--database-url", url])
+    assert result.exit_code == 0, result.output
+    (row,) = rows(result.stdout)
+    assert (row["patient_reference"], row["patient_identifiers"]) == ("Patient/p1", "Patient/p1")
+
+
+def test_export_with_identifiers_is_recorded_as_one_disclosure_per_patient(store: tuple[str, AppContext]) -> None:
+    url, ctx = store
+    count = "SELECT count(*) FROM audit_event WHERE subtype = 'disclose'"
+    with ctx.db.session() as session:
+        before = session.execute(text(count)).scalar_one()
+    runner.invoke(audit_app, ["export", *RANGE, "--database-url", url])
+    with ctx.db.session() as session:
+        assert session.execute(text(count)).scalar_one() == before  # without identifiers: nothing disclosed
+    runner.invoke(audit_app, ["export", *RANGE, "--with-identifiers", "--database-url", url])
+    with ctx.db.session() as session:
+        (body,) = [orjson.loads(b) for (b,) in session.execute(text(
+            "SELECT resource FROM audit_event WHERE subtype = 'disclose'"))][before:]
+    patient = [e for e in body["entity"] if e.get("role", {}).get("code") == "1"]
+    assert [e["what"] for e in patient] == [{"reference": "Patient/p1"}]
+    assert any(e.get("what", {}).get("reference", "").startswith("Flag/") for e in body["entity"])
+
+
+def test_the_old_range_option_names_are_gone(store: tuple[str, AppContext]) -> None:
+    url, _ = store
+    result = runner.invoke(audit_app, ["export", "--from", "2026-03-02", "--to", "2026-03-03", "--database-url", url])
+    assert result.exit_code == 2  # one vocabulary: --start/--end, as the API's start/end

@@ -41,6 +41,7 @@ class AuditQuery:
     clients: Sequence[str] = ()
     patient_key: str | None = None
     subtypes: Sequence[str] = ()
+    outcomes: Sequence[str] = ()  # AuditEvent.outcome codes: 0 success, 4 minor failure, 8 serious, 12 major
     count: int = 50
     offset: int = 0
 
@@ -57,6 +58,8 @@ def search_audit(*, session: Session, q: AuditQuery) -> tuple[list[bytes], int]:
         conds.append(_A.c.patient_key == q.patient_key)
     if q.subtypes:
         conds.append(_A.c.subtype.in_(list(q.subtypes)))
+    if q.outcomes:
+        conds.append(_A.c.outcome.in_(list(q.outcomes)))
     where = and_(true(), *conds)
     total = session.execute(select(func.count()).select_from(_A).where(where)).scalar_one()
     rows = session.execute(select(_A.c.resource).where(where).order_by(_A.c.recorded.desc(), _A.c.id)

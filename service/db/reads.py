@@ -122,6 +122,10 @@ class FlagQuery:
     updated_from: datetime | None = None
     updated_to: datetime | None = None
     details: Sequence[str] | None = None  # cites any of these: Type/id (any version) or Type/id/_history/n
+    acknowledged: bool | None = None  # an acknowledgement is recorded (True) or none is (False)
+    # (comparator, minutes) each the delay from raising to the first acknowledgement must meet
+    ack_delay: Sequence[tuple[str, float]] = ()
+    encounters: Sequence[str] | None = None  # Flag.encounter is any of these references
     sort: str = "-_lastUpdated"
     count: int = 50
     offset: int = 0
@@ -151,7 +155,35 @@ def search_flags(*, session: Session, q: FlagQuery) -> tuple[list[bytes], int]:
         conds.append(f.c.last_updated < q.updated_to)
     if q.details is not None:
         conds.append(or_(false(), *(f.c.evidence.like(_cites(ref), escape="\\") for ref in q.details)))
+    if q.encounters is not None:
+        conds.append(f.c.encounter.in_(list(q.encounters)))
+    if q.acknowledged is not None or q.ack_delay:
+        conds += _ack_conditions(session, f, q)
     return _served_page(session, f, "Flag", conds, {"date": f.c.period_start}, q.sort, q.count, q.offset)
+
+
+_COMPARE = {"eq": "__eq__", "gt": "__gt__", "ge": "__ge__", "lt": "__lt__", "le": "__le__"}
+
+
+def _ack_conditions(session: Session, f: Any, q: FlagQuery) -> list[Any]:
+    """Whether a Flag has an acknowledgement, and how long after its raising the first one came."""
+    from service.db.tables import FlagAck
+
+    a = FlagAck.__table__  # type: ignore[attr-defined]
+    conds: list[Any] = []
+    acked = select(a.c.flag_id).where(a.c.flag_id == f.c.id).exists()
+    if q.acknowledged is not None:
+        conds.append(acked if q.acknowledged else ~acked)
+    if q.ack_delay:
+        first = select(func.min(a.c.acknowledged_at)).where(a.c.flag_id == f.c.id).scalar_subquery()
+        if session.get_bind().dialect.name == "sqlite":
+            seconds = (func.julianday(first) - func.julianday(f.c.raised_at)) * 86400.0
+        else:
+            seconds = func.extract("epoch", first - f.c.raised_at)
+        conds.append(acked)  # a Flag never acknowledged has no delay to compare
+        for op, minutes in q.ack_delay:
+            conds.append(getattr(seconds, _COMPARE[op])(minutes * 60.0))
+    return conds
 
 
 def _cites(ref: str) -> str:

@@ -17,14 +17,15 @@ import orjson
 from sqlalchemy import func, select
 from sqlmodel import Session
 
-from service.db.acks import first_acks
 from service.db.tables import (
     AuditRecord,
     DeliveryAttempt,
     Escalation,
     FhirVersion,
+    FlagAck,
     FlagRecord,
     ObservationRecord,
+    PatientAlias,
     SubscriptionEvent,
 )
 from service.domain.coverage import unread_result
@@ -42,7 +43,7 @@ from service.summary import (
     SummaryFacts,
 )
 
-__all__ = ["load_facts"]
+__all__ = ["audit_rows", "load_facts", "patient_identifiers"]
 
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
 _FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
@@ -51,6 +52,8 @@ _ESC = Escalation.__table__  # type: ignore[attr-defined]
 _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 _A = DeliveryAttempt.__table__  # type: ignore[attr-defined]
 _AUDIT = AuditRecord.__table__  # type: ignore[attr-defined]
+_ACK = FlagAck.__table__  # type: ignore[attr-defined]
+_ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
 _PRIORITY = {"PH": "high", "PM": "medium", "PL": "low"}
 _CHUNK = 500  # keeps IN lists well inside every backend's parameter limit
 
@@ -66,17 +69,28 @@ def load_facts(*, session: Session, start: datetime, end: datetime, policy: Poli
     versions = _flag_versions(session, cohort)
     cited = sorted({ref for v in versions if v.version_id == 1 for ref in v.evidence
                     if ref.startswith("Observation/")})
-    acks = first_acks(session=session, flag_ids=cohort) if cohort else {}
     return SummaryFacts(
         flag_versions=versions,
         evidence=_evidence(session, cited),
         results=_results(session, start, end, policy),
-        first_acks=[AckFact(fid, at) for fid, at in sorted(acks.items())],
+        first_acks=_first_acks(session, cohort),
         escalations=_escalations(session, cohort),
         outbox=_outbox(session, start, end),
         audit_counts=_audit_counts(session, start, end),
         suspect_drops=_suspect_drops(session, start, end),
     )
+
+
+def _first_acks(session: Session, flag_ids: Sequence[str]) -> list[AckFact]:
+    """Each Flag's first acknowledgement: when, by which client, with its note (ties: the lower id)."""
+    first: dict[str, AckFact] = {}
+    for ids in _chunks(flag_ids):
+        rows = session.execute(select(_ACK.c.flag_id, _ACK.c.acknowledged_at, _ACK.c.client, _ACK.c.note, _ACK.c.id)
+                               .where(_ACK.c.flag_id.in_(list(ids)))
+                               .order_by(_ACK.c.flag_id, _ACK.c.acknowledged_at, _ACK.c.id))
+        for fid, at, client, note, _ in rows:
+            first.setdefault(fid, AckFact(fid, at, str(client), note))
+    return [first[k] for k in sorted(first)]
 
 
 def _chunks(items: Sequence[T]) -> Iterator[Sequence[T]]:
@@ -110,7 +124,18 @@ def _flag_fact(rid: str, version: int, written: datetime, flag: dict[str, Any],
         priority=_PRIORITY.get(code, code), status=str(flag["status"]), patient_key=patient_key,
         period_start=parse_datetime(flag["period"]["start"]),
         evidence=tuple(e["valueReference"]["reference"] for e in ext if e.get("url") == FLAG_DETAIL_URL),
+        sentence=str((flag.get("code") or {}).get("text", "")),
+        period_end=parse_datetime(flag["period"]["end"]) if flag["period"].get("end") else None,
+        subject=_subject(flag.get("subject") or {}),
     )
+
+
+def _subject(subject: dict[str, Any]) -> str:
+    """The patient as the Flag names it: the reference the feed used, else its identifier."""
+    if subject.get("reference"):
+        return str(subject["reference"])
+    ident = subject.get("identifier") or {}
+    return f"{ident.get('system', '')}|{ident.get('value', '')}" if ident else ""
 
 
 def _split(ref: str) -> tuple[str, int] | None:
@@ -127,6 +152,7 @@ def _evidence(session: Session, references: Sequence[str]) -> list[EvidenceFact]
     ids = sorted({rid for rid, _ in keys})
     arrived: dict[str, datetime] = {}
     issued: dict[tuple[str, int], datetime | None] = {}
+    shown: dict[tuple[str, int], tuple[str | None, str | None, datetime | None]] = {}
     for chunk in _chunks(ids):
         rows = session.execute(select(_V.c.id, _V.c.version_id, _V.c.last_updated, _V.c.resource).where(
             _V.c.resource_type == "Observation", _V.c.id.in_(list(chunk))))
@@ -134,10 +160,26 @@ def _evidence(session: Session, references: Sequence[str]) -> list[EvidenceFact]
             if version == 1:
                 arrived[rid] = written
             if (rid, version) in keys:
-                value = orjson.loads(body).get("issued")
+                obs = orjson.loads(body)
+                value = obs.get("issued")
                 issued[(rid, version)] = parse_datetime(value) if value else None
-    return [EvidenceFact(ref, issued[key], arrived[key[0]]) for ref, key in sorted(wanted.items())
+                shown[(rid, version)] = _value_as_sent(obs)
+    return [EvidenceFact(ref, issued[key], arrived[key[0]], *shown[key]) for ref, key in sorted(wanted.items())
             if key in issued and key[0] in arrived]
+
+
+def _value_as_sent(obs: dict[str, Any]) -> tuple[str | None, str | None, datetime | None]:
+    """(value, unit, collection time) of an Observation as the feed sent it."""
+    q = obs.get("valueQuantity") or {}
+    value = q.get("value")
+    effective = obs.get("effectiveDateTime") or obs.get("effectiveInstant") \
+        or (obs.get("effectivePeriod") or {}).get("start")
+    try:
+        collected = parse_datetime(effective) if effective else None
+    except ValueError:  # an offset-less time read in the lab's zone when stored: order by arrival instead
+        collected = None
+    shown = None if isinstance(value, bool) or not isinstance(value, int | float) else str(value)
+    return (shown, q.get("unit") or q.get("code"), collected)
 
 
 def _results(session: Session, start: datetime, end: datetime, policy: Policy) -> list[ResultFact]:
@@ -191,3 +233,30 @@ def _audit_counts(session: Session, start: datetime, end: datetime) -> dict[str,
     rows = session.execute(select(_AUDIT.c.subtype, func.count()).where(
         _AUDIT.c.recorded >= start, _AUDIT.c.recorded < end).group_by(_AUDIT.c.subtype))
     return {str(subtype): int(n) for subtype, n in rows}
+
+
+def audit_rows(*, session: Session, start: datetime, end: datetime) -> list[tuple[str, datetime, str, str, int]]:
+    """(id, recorded, subtype, client, results dropped) of every AuditEvent recorded in [start, end): the
+    rows ``audit_events_by_subtype`` and the dropped-under-suspect-codes figures count."""
+    out = []
+    for rid, recorded, subtype, client, body in session.execute(
+            select(_AUDIT.c.id, _AUDIT.c.recorded, _AUDIT.c.subtype, _AUDIT.c.client, _AUDIT.c.resource)
+            .where(_AUDIT.c.recorded >= start, _AUDIT.c.recorded < end)
+            .order_by(_AUDIT.c.recorded, _AUDIT.c.id)):
+        dropped = 0
+        if subtype == "dropped-code":
+            event = orjson.loads(body)
+            dropped = sum(int(d["valueString"]) for e in event["entity"] for d in e.get("detail", ())
+                          if d["type"] == "dropped")
+        out.append((str(rid), recorded, str(subtype), str(client), dropped))
+    return out
+
+
+def patient_identifiers(*, session: Session, patient_keys: Sequence[str]) -> dict[str, list[str]]:
+    """Each patient's references and identifiers as the feeds sent them ("Patient/x", "system|value")."""
+    out: dict[str, list[str]] = {}
+    for keys in _chunks(sorted(set(patient_keys))):
+        for alias, key in session.execute(select(_ALIAS.c.alias, _ALIAS.c.patient_key)
+                                          .where(_ALIAS.c.patient_key.in_(list(keys)))):
+            out.setdefault(key, []).append(str(alias).split(":", 1)[-1])
+    return {k: sorted(v) for k, v in out.items()}

@@ -75,6 +75,7 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                                    "(others need our scope lytestream/admin).",
                 },
                 "interaction": [{"code": "transaction"}, {"code": "batch"}],
+                "operation": [{"name": "backtest", "definition": f"{CANONICAL_BASE}/OperationDefinition/backtest"}],
                 "resource": [
                     {
                         "type": "Observation",
@@ -114,6 +115,13 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                             _search("priority", "token", "PH | PM | PL (flag-priority)", ours=True),
                             _search("detail", "reference", "a result the Flag cites (Observation/id); "
                                     "_include=Flag:detail returns them", ours=True),
+                            _search("encounter", "reference", "the Encounter (admission, ward stay) the results "
+                                    "named, as sent: Encounter/id"),
+                            _search("acknowledged", "token", "true: an acknowledgement is recorded; false: never "
+                                    "acknowledged", ours=True),
+                            _search("acknowledged-after", "number", "minutes from raising to the first "
+                                    "acknowledgement, prefixes eq gt ge lt le (gt30: later than 30 min)",
+                                    ours=True),
                             *_CONTROL,
                         ],
                     },
@@ -146,6 +154,8 @@ def capability_statement(*, base_url: str, now: datetime, lab_timezone: str | No
                             _search("agent", "token", "the client the token names"),
                             _search("patient", "reference", "Patient/id, or patient:identifier=system|value"),
                             _search("subtype", "token", "interaction or operation code"),
+                            _search("outcome", "token", "0 success, 4 minor failure (e.g. a notification the "
+                                    "receiver did not accept), 8 serious failure"),
                         ],
                     },
                     {

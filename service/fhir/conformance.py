@@ -27,12 +27,14 @@ def canonical(rtype: str, rid: str) -> str:
     return f"{CANONICAL_BASE}/{rtype}/{rid}"
 
 
-def _search_parameter(code: str, kind: str, expression: str, description: str,
+def _search_parameter(code: str, kind: str, expression: str | None, description: str,
                       **extra: Any) -> dict[str, Any]:
+    """``expression`` None: the value is kept beside the Flag (the acknowledgements), not in its elements."""
     rid = f"Flag-{code}"
+    where = {"expression": expression} if expression else {}
     return {"resourceType": "SearchParameter", "id": rid, "url": canonical("SearchParameter", rid),
-            "name": f"Flag{code.capitalize()}", **_COMMON, "description": description, "code": code,
-            "base": ["Flag"], "type": kind, "expression": expression, **extra}
+            "name": "Flag" + "".join(part.capitalize() for part in code.split("-")), **_COMMON,
+            "description": description, "code": code, "base": ["Flag"], "type": kind, **where, **extra}
 
 
 def _param(name: str, use: str, kind: str | None, doc: str, min_: int = 0, max_: str = "1",
@@ -103,7 +105,8 @@ def _operation_definitions() -> list[dict[str, Any]]:
                    _out("range", "string", "how the range is read"),
                    _out("flags_raised", "integer", "Flags whose first version was written in the range"),
                    _by("flags_by_rule", "those Flags by rule code"),
-                   _by("flags_by_priority", "those Flags by priority (high, medium, low)"),
+                   _by("flags_by_priority", "those Flags by the priority they were raised with: PH (High "
+                       "priority), PM (Medium priority), PL (Low priority)"),
                    _out("alert_burden", None, "Flags per result and per patient-day", [
                        _out("results_stored", "integer", "results first stored in the range"),
                        _out("patient_days", "integer", "distinct (patient, UTC date) with a result"),
@@ -122,17 +125,36 @@ def _operation_definitions() -> list[dict[str, Any]]:
                    _out("escalations", None, "escalation rounds", [
                        _out("count", "integer", "escalation events"),
                        _out("flags_escalated", "integer", "distinct Flags escalated")]),
-                   _out("notifications", None, "the outbox in the range", [
+                   _out("notifications", None, "notifications queued for subscribers in the range", [
                        _out(n, "integer", d) for n, d in (
-                           ("outbox_rows", "rows written"), ("delivered", "rows sent"),
-                           ("retried", "rows sent after a failed try"), ("failed", "rows given up"),
-                           ("pending", "rows not yet sent"), ("attempts", "sends tried"))]),
+                           ("count", "notifications queued"), ("delivered", "notifications delivered"),
+                           ("retried", "delivered or given up after a failed try"),
+                           ("failed", "notifications given up"), ("pending", "notifications not yet sent"),
+                           ("attempts", "delivery tries in all"))]),
                    _by("audit_events_by_subtype", "AuditEvents recorded in the range by subtype"),
                    _out("definitions", None, "what each figure counts; one valueString part per term",
                         [_param("(term)", "out", "string", "its definition", max_="*")]),
                    _out("caution", "string", "decision support only"),
                ]}
-    return [ack, summary]
+    backtest = {"resourceType": "OperationDefinition", "id": "backtest",
+                "url": canonical("OperationDefinition", "backtest"), "name": "Backtest", **_COMMON,
+                "kind": "operation", "affectsState": False, "code": "backtest", "system": True, "type": False,
+                "instance": False,
+                "description": "Re-evaluate the stored history of [start, end) under a candidate policy and the "
+                               "baseline with the live rules on a simulated clock, and compare them. "
+                               "Asynchronous: 202 with Content-Location naming a status URL "
+                               "([base]/$backtest-status/[id]) that answers 202 while it runs and 200 with the "
+                               "figures when done; counts and times only. " + CAUTION,
+                "parameter": [
+                    _param("start", "in", "string", "range start, included: YYYY-MM-DD or an instant with offset", 1),
+                    _param("end", "in", "string", "range end, excluded", 1),
+                    _param("policy", "in", "string", "the candidate policy, TOML text (as policy check reads it)", 1),
+                    _param("baseline", "in", "string", "the baseline policy, TOML text; default the policy in force"),
+                    _param("return", "out", "Parameters", "when done: per policy Flags raised, patients affected, "
+                           "burden, result → Flag median and p90 (nearest rank), escalations if never "
+                           "acknowledged, Flags by rule and raised priority; Flags gained and lost by rule", 1),
+                ]}
+    return [ack, summary, backtest]
 
 
 def _search_parameters() -> list[dict[str, Any]]:
@@ -149,6 +171,14 @@ def _search_parameters() -> list[dict[str, Any]]:
                           "_include=Flag:detail returns them; detail=Observation/[id] finds the Flags citing any "
                           "version of that result.",
                           target=["Observation", "MedicationAdministration"]),
+        _search_parameter("acknowledged", "token", None,
+                          "Whether an acknowledgement ($acknowledge) is recorded for the Flag: true | false. "
+                          "acknowledged=false finds the Flags nobody acknowledged."),
+        _search_parameter("acknowledged-after", "number", None,
+                          "Minutes from the Flag's raising to its first acknowledgement, with the number "
+                          "prefixes eq, gt, ge, lt, le (repeats are ANDed): acknowledged-after=gt30 finds the "
+                          "Flags first acknowledged more than 30 minutes after they were raised. A Flag never "
+                          "acknowledged matches no value.", comparator=["eq", "gt", "ge", "lt", "le"]),
     ]
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import re
 from collections.abc import Collection
 from dataclasses import dataclass
@@ -10,7 +11,7 @@ from datetime import UTC, datetime, timedelta
 from service.errors import Issue, RequestRejected
 from service.fhir.datetimes import without_leap_second
 
-__all__ = ["Token", "codes_in_system", "date_bounds", "intersect", "tokens"]
+__all__ = ["Token", "acknowledged_param", "codes_in_system", "date_bounds", "intersect", "minutes_param", "tokens"]
 
 _PREFIX = re.compile(r"^(eq|ge|gt|le|lt)?(\d{4}(-\d{2}(-\d{2}(T.+)?)?)?)$")
 
@@ -111,3 +112,36 @@ def intersect(per_value: list[set[str]]) -> set[str] | None:
     for codes in per_value[1:]:
         result &= codes
     return result
+
+
+_BOOLEAN = {"true": True, "false": False}
+_NUMBER_PREFIXES = ("eq", "gt", "ge", "lt", "le")
+
+
+def acknowledged_param(values: list[str]) -> bool | None:
+    """``acknowledged=true|false`` (one value; repeats must agree); None when absent."""
+    seen = {v.strip().lower() for v in values}
+    if not seen:
+        return None
+    if not seen <= set(_BOOLEAN) or len(seen) > 1:
+        raise RequestRejected([Issue("value", f"acknowledged must be true or false, not {', '.join(sorted(seen))}")])
+    return _BOOLEAN[seen.pop()]
+
+
+def minutes_param(values: list[str], name: str) -> list[tuple[str, float]]:
+    """A number search parameter in minutes with its prefix (search.html#prefix: eq gt ge lt le; none = eq);
+    repeats are ANDed, e.g. ``gt30&lt120``."""
+    out = []
+    for value in values:
+        text = value.strip()
+        prefix = text[:2] if text[:2] in _NUMBER_PREFIXES else "eq"
+        number = text[2:] if text[:2] in _NUMBER_PREFIXES else text
+        try:
+            minutes = float(number)
+        except ValueError:
+            raise RequestRejected([Issue("value", f"{name}={value!r} is not a number of minutes with an optional "
+                                         "prefix (eq, gt, ge, lt, le), e.g. gt30")]) from None
+        if not math.isfinite(minutes):
+            raise RequestRejected([Issue("value", f"{name}={value!r} is not a finite number")])
+        out.append((prefix, minutes))
+    return out

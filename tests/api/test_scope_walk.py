@@ -109,9 +109,25 @@ def system_case(code: str) -> Case:
     raise AssertionError(f"the walk has no request for the system interaction {code!r}: add one")
 
 
+_POLICY = (Path(__file__).resolve().parents[2] / "service" / "policy" / "default.toml").read_text("utf-8")
+
+
+def system_operation_cases(name: str) -> list[Case]:
+    if name == "backtest":  # the operation and the status URL it names
+        body = {"resourceType": "Parameters", "parameter": [
+            {"name": "start", "valueString": "2026-03-01"}, {"name": "end", "valueString": "2026-03-03"},
+            {"name": "policy", "valueString": _POLICY}]}
+        scope = needs("Flag.s", "AuditEvent.s")
+        return [Case("$backtest", "POST", "/fhir/$backtest", scope, body),
+                Case("$backtest status", "GET", "/fhir/$backtest-status/not-held", scope),
+                Case("$backtest cancel", "DELETE", "/fhir/$backtest-status/not-held", scope)]
+    raise AssertionError(f"the walk has no request for the system operation ${name}: add one")
+
+
 def walk(capability: dict[str, Any], ids: dict[str, str]) -> list[Case]:
     (rest,) = capability["rest"]
     cases = [system_case(i["code"]) for i in rest.get("interaction", [])]
+    cases += [c for op in rest.get("operation", []) for c in system_operation_cases(op["name"])]
     for declared in rest["resource"]:
         rtype = declared["type"]
         cases += [resource_case(rtype, i["code"], declared, ids) for i in declared.get("interaction", [])]

@@ -100,7 +100,7 @@ def test_flags_raised_are_counted_by_rule(ward: dict[str, Any]) -> None:
 
 
 def test_flags_raised_are_counted_by_priority(ward: dict[str, Any]) -> None:
-    assert (ward["flags_raised"], ward["flags_by_priority"]) == (2, {"high": 2})
+    assert (ward["flags_raised"], ward["flags_by_priority"]) == (2, {"PH": 2})
 
 
 def test_burden_counts_every_result_stored_and_each_patient_day(ward: dict[str, Any]) -> None:
@@ -199,7 +199,7 @@ def test_a_retried_delivery_counts_as_delivered_and_retried(
     clock.advance(timedelta(seconds=context.settings.delivery_cap_seconds + 1))
     context.dispatcher.run_once()                      # event: try 2 succeeds
     n = summary(api)["notifications"]
-    assert (n["outbox_rows"], n["delivered"], n["retried"], n["failed"], n["attempts"]) == (2, 2, 1, 0, 3)
+    assert (n["count"], n["delivered"], n["retried"], n["failed"], n["attempts"]) == (2, 2, 1, 0, 3)
 
 
 def test_a_delivery_given_up_counts_as_failed(

@@ -16,7 +16,7 @@ from service.fhir.search import date_bounds
 
 router = APIRouter()
 
-_PARAMS = {"date", "agent", "patient", "patient:identifier", "subtype", "_count", "_offset"}
+_PARAMS = {"date", "agent", "patient", "patient:identifier", "subtype", "outcome", "_count", "_offset"}
 
 
 @router.get("/fhir/AuditEvent", dependencies=[Depends(require("AuditEvent", "s"))])
@@ -27,7 +27,8 @@ async def search(request: Request, ctx: ContextDep) -> Response:
     low, high = date_bounds(params.getlist("date"))
     alias = patient_alias(params)
     q = AuditQuery(date_from=low, date_to=high, clients=split_tokens(params, "agent"),
-                   subtypes=split_tokens(params, "subtype"), count=page.count, offset=page.offset)
+                   subtypes=split_tokens(params, "subtype"), outcomes=split_tokens(params, "outcome"),
+                   count=page.count, offset=page.offset)
 
     def run() -> tuple[list[bytes], int]:
         with ctx.db.session() as session:

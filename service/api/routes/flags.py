@@ -22,12 +22,12 @@ from service.errors import Issue, RequestRejected
 from service.fhir.audit_render import Requester
 from service.fhir.flag_render import FLAG_DETAIL_URL, RULE_SYSTEM
 from service.fhir.render import fhir_instant
-from service.fhir.search import codes_in_system, date_bounds, intersect, tokens
+from service.fhir.search import acknowledged_param, codes_in_system, date_bounds, intersect, minutes_param, tokens
 
 router = APIRouter()
 
 _PARAMS = {"patient", "patient:identifier", "subject", "date", "_lastUpdated", "status", "code", "priority",
-           "detail", "_sort", "_include"}
+           "detail", "_sort", "_include", "encounter", "acknowledged", "acknowledged-after"}
 FLAG_STATUS = "http://hl7.org/fhir/flag-status"
 FLAG_STATUSES = ("active", "inactive", "entered-in-error")  # FHIR R4 ValueSet flag-status
 FLAG_PRIORITY = "http://hl7.org/fhir/flag-priority-code"
@@ -61,8 +61,12 @@ async def search(request: Request, ctx: ContextDep, who: RequesterDep) -> Respon
                                                       if p in _PRIORITY_CODES]
     details = intersect([{t.code for t in tokens(v)} for v in params.getlist("detail")])
     alias = patient_alias(params)
+    encounters = intersect([{t.code for t in tokens(v)} for v in params.getlist("encounter")])
     q = FlagQuery(details=_listed(details), statuses=_listed(statuses), rules=_listed(rules), priorities=priorities,
-                  date_from=low, date_to=high, updated_from=updated_low, updated_to=updated_high, sort=sort, count=page.count, offset=page.offset)
+                  date_from=low, date_to=high, updated_from=updated_low, updated_to=updated_high, sort=sort, count=page.count, offset=page.offset,
+                  acknowledged=acknowledged_param(params.getlist("acknowledged")),
+                  ack_delay=minutes_param(params.getlist("acknowledged-after"), "acknowledged-after"),
+                  encounters=_listed(encounters))
 
     def run() -> tuple[list[bytes], int, list[bytes], list[Issue]]:
         with ctx.db.session() as session:
