@@ -131,7 +131,7 @@ class AckFact:
 
     flag_id: str
     acknowledged_at: datetime
-    by: str = ""  # the acknowledging client, as recorded
+    by: str = ""  # who acknowledged: "person (client)" when a person was named, else the client
     note: str | None = None
 
 

@@ -140,3 +140,18 @@ def test_the_old_range_option_names_are_gone(store: tuple[str, AppContext]) -> N
     url, _ = store
     result = runner.invoke(audit_app, ["export", "--from", "2026-03-02", "--to", "2026-03-03", "--database-url", url])
     assert result.exit_code == 2  # one vocabulary: --start/--end, as the API's start/end
+
+
+def test_export_names_the_person_who_acknowledged_beside_the_client(sqlite_url: str, tmp_path: Path) -> None:
+    clock = FixedClock(datetime(2026, 3, 2, 12, 0, tzinfo=UTC))
+    ctx = build_context(Settings(database_url=sqlite_url, data_dir=tmp_path, base_url="http://testserver/fhir",
+                                 scheduler=False), clock=clock)
+    with authorised_client(ctx) as client:
+        client.post("/fhir", content=dumps(bundle("batch", observation("na1", value=118))), headers=HEADERS)
+        flag_id = client.get("/fhir/Flag").json()["entry"][0]["resource"]["id"]
+        who = b'{"resourceType":"Parameters","parameter":[{"name":"who","valueString":"RN Example"}]}'
+        assert client.post(f"/fhir/Flag/{flag_id}/$acknowledge", content=who, headers=HEADERS).status_code == 200
+    ctx.db.dispose()
+    result = runner.invoke(audit_app, ["export", *RANGE, "--database-url", sqlite_url])
+    (row,) = rows(result.stdout)
+    assert row["acknowledged_by"] == "RN Example (test-suite)"

@@ -12,11 +12,10 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from zoneinfo import ZoneInfo
 
+from service.vocabulary import PRIORITY_DISPLAY, priority_code
+
 __all__ = ["AckFacts", "BoardRow", "FlagFacts", "LatestValue", "board_rows", "duration_words", "local_time"]
 
-PRIORITY_CODE = {"high": "PH", "medium": "PM", "low": "PL"}
-# The display of each code in the FHIR flag-priority-code system (http://hl7.org/fhir/flag-priority-code).
-PRIORITY_DISPLAY = {"PH": "High priority", "PM": "Medium priority", "PL": "Low priority"}
 PRIORITY_WORD = {"PH": "High", "PM": "Medium", "PL": "Low"}
 _RANK = {"high": 0, "medium": 1, "low": 2}
 
@@ -83,7 +82,7 @@ def board_rows(flags: Sequence[FlagFacts], now: datetime, zone: ZoneInfo | None)
 
 
 def _row(f: FlagFacts, now: datetime, zone: ZoneInfo | None) -> BoardRow:
-    code = PRIORITY_CODE.get(f.priority, "PL")
+    code = priority_code(f.priority)
     ids = tuple(f.identifiers) or ("(no identifier sent)",)
     latest = latest_time = None
     if f.latest is not None:

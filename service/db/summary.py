@@ -82,14 +82,16 @@ def load_facts(*, session: Session, start: datetime, end: datetime, policy: Poli
 
 
 def _first_acks(session: Session, flag_ids: Sequence[str]) -> list[AckFact]:
-    """Each Flag's first acknowledgement: when, by which client, with its note (ties: the lower id)."""
+    """Each Flag's first acknowledgement: when, by whom, with its note (ties: the lower id)."""
     first: dict[str, AckFact] = {}
     for ids in _chunks(flag_ids):
-        rows = session.execute(select(_ACK.c.flag_id, _ACK.c.acknowledged_at, _ACK.c.client, _ACK.c.note, _ACK.c.id)
+        rows = session.execute(select(_ACK.c.flag_id, _ACK.c.acknowledged_at, _ACK.c.client, _ACK.c.person,
+                                      _ACK.c.note, _ACK.c.id)
                                .where(_ACK.c.flag_id.in_(list(ids)))
                                .order_by(_ACK.c.flag_id, _ACK.c.acknowledged_at, _ACK.c.id))
-        for fid, at, client, note, _ in rows:
-            first.setdefault(fid, AckFact(fid, at, str(client), note))
+        for fid, at, client, person, note, _ in rows:
+            # The named person when one was given (the board's sign-in, $acknowledge's who), with the client.
+            first.setdefault(fid, AckFact(fid, at, f"{person} ({client})" if person else str(client), note))
     return [first[k] for k in sorted(first)]
 
 

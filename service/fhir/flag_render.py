@@ -17,6 +17,7 @@ from typing import Any
 
 from service.domain.findings import Rule
 from service.fhir.render import CAUTION, fhir_instant
+from service.vocabulary import priority_code, priority_display
 
 __all__ = [
     "ACKNOWLEDGEMENT_URL",
@@ -39,7 +40,6 @@ ACKNOWLEDGEMENT_URL = f"{CANONICAL_BASE}/StructureDefinition/flag-acknowledgemen
 SUBJECT_ALIAS_URL = f"{CANONICAL_BASE}/StructureDefinition/subject-alias"
 FLAG_PRIORITY_URL = "http://hl7.org/fhir/StructureDefinition/flag-priority"
 FLAG_DETAIL_URL = "http://hl7.org/fhir/StructureDefinition/flag-detail"
-_PRIORITY = {"high": ("PH", "High priority"), "medium": ("PM", "Medium priority"), "low": ("PL", "Low priority")}
 
 
 @dataclass(frozen=True, slots=True)
@@ -99,7 +99,7 @@ def _identifier(alias: str) -> dict[str, str]:
 
 
 def render_flag(v: FlagView) -> dict[str, Any]:
-    code, display = _PRIORITY[v.priority]
+    code, display = priority_code(v.priority), priority_display(v.priority)
     evaluation: list[dict[str, Any]] = [
         {"url": "rule", "valueCode": v.rule},
         {"url": "episode", "valueString": v.episode},
