@@ -76,6 +76,13 @@ def axe_serious(browser: Any) -> list[str]:
             for v in result if v.get("impact") in ("serious", "critical")]
 
 
+def open_trajectory(browser: Any, server: DemoServer, flag_id: str) -> None:
+    """A Flag's trajectory page, once its four charts are drawn."""
+    browser.get(f"{server.url}/board/flags/{flag_id}")
+    wait_for(lambda: browser.execute_script("return document.body.getAttribute('data-charts-ready');") == "4",
+             what="four charts")
+
+
 def test_sign_in_opens_the_board_with_every_active_flag(browser: Any, demo_server: DemoServer) -> None:
     sign_in(browser, demo_server)
     shown = {r.get_attribute("data-flag") for r in rows(browser)}
@@ -136,9 +143,7 @@ def test_acknowledging_with_a_note_shows_who_when_and_the_note(browser: Any, dem
 def test_trajectory_draws_bands_evidence_and_the_rate(browser: Any, demo_server: DemoServer) -> None:
     flag = next(f for f in active_flags(demo_server) if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast")
     sign_in(browser, demo_server)
-    browser.get(f"{demo_server.url}/board/flags/{flag['id']}")
-    wait_for(lambda: browser.execute_script("return document.body.getAttribute('data-charts-ready');") == "4",
-             what="four charts")
+    open_trajectory(browser, demo_server, flag["id"])
     sodium = browser.execute_script(
         "const c = window.lytestreamCharts.sodium; const a = c.options.plugins.annotation.annotations;"
         "return {bands: Object.keys(a).filter(k => k.startsWith('band')).length, rate: a.rate ? a.rate.label.content : null,"
@@ -157,9 +162,7 @@ def test_trajectory_draws_bands_evidence_and_the_rate(browser: Any, demo_server:
 def test_trajectory_shades_insulin_therapy(browser: Any, demo_server: DemoServer) -> None:
     flag = next(f for f in active_flags(demo_server) if f["code"]["coding"][0]["code"] == "hypokalemia-on-insulin")
     sign_in(browser, demo_server)
-    browser.get(f"{demo_server.url}/board/flags/{flag['id']}")
-    wait_for(lambda: browser.execute_script("return document.body.getAttribute('data-charts-ready');") == "4",
-             what="four charts")
+    open_trajectory(browser, demo_server, flag["id"])
     labels = browser.execute_script(
         "const a = window.lytestreamCharts.potassium.options.plugins.annotation.annotations;"
         "return Object.keys(a).filter(k => k.startsWith('insulin')).map(k => a[k].label.content);")
@@ -169,9 +172,7 @@ def test_trajectory_shades_insulin_therapy(browser: Any, demo_server: DemoServer
 def test_pages_load_everything_from_this_server(browser: Any, demo_server: DemoServer) -> None:
     sign_in(browser, demo_server)
     flag = active_flags(demo_server)[0]
-    browser.get(f"{demo_server.url}/board/flags/{flag['id']}")
-    wait_for(lambda: browser.execute_script("return document.body.getAttribute('data-charts-ready');") == "4",
-             what="charts drawn with the network cut off")
+    open_trajectory(browser, demo_server, flag["id"])  # drawn with the network cut off
     loaded = browser.execute_script("return performance.getEntriesByType('resource').map(e => e.name);")
     assert loaded and all(name.startswith(demo_server.url) for name in loaded)
 
@@ -182,9 +183,7 @@ def test_no_console_errors_on_any_page(browser: Any, demo_server: DemoServer) ->
     browser.get(f"{demo_server.url}/board")
     time.sleep(2.5)  # two refreshes at the demo's 1 s interval
     for flag in active_flags(demo_server)[:4]:
-        browser.get(f"{demo_server.url}/board/flags/{flag['id']}")
-        wait_for(lambda: browser.execute_script("return document.body.getAttribute('data-charts-ready');") == "4",
-                 what="charts")
+        open_trajectory(browser, demo_server, flag["id"])
     assert severe_console_entries(browser) == []
 
 
@@ -192,9 +191,7 @@ def test_no_console_errors_on_any_page(browser: Any, demo_server: DemoServer) ->
 def test_axe_finds_no_serious_accessibility_violation(browser: Any, demo_server: DemoServer, page: str) -> None:
     sign_in(browser, demo_server)
     if page == "trajectory":
-        browser.get(f"{demo_server.url}/board/flags/{active_flags(demo_server)[0]['id']}")
-        wait_for(lambda: browser.execute_script("return document.body.getAttribute('data-charts-ready');") == "4",
-                 what="charts")
+        open_trajectory(browser, demo_server, active_flags(demo_server)[0]["id"])
     elif page == "login":
         browser.get(f"{demo_server.url}/board/login")
     else:

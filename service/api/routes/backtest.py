@@ -23,7 +23,7 @@ from fastapi.responses import Response
 from service.api.context import ContextDep
 from service.api.fhir_io import fhir_response, read_json
 from service.api.requester import RequesterDep
-from service.api.routes.summary import MAX_SPAN
+from service.api.routes.summary import checked_range
 from service.auth.deps import require
 from service.backtest.compare import Comparison
 from service.backtest.jobs import JobBoard
@@ -35,7 +35,6 @@ from service.fhir.audit_render import AuditFacts
 from service.fhir.parameters import as_parameters
 from service.fhir.render import CAUTION, fhir_instant
 from service.policy import Policy, PolicyError, load_policy, policy_hash
-from service.summary import parse_instant
 from service.vocabulary import priority_code
 
 router = APIRouter()
@@ -121,14 +120,7 @@ def _read(body: Any, current: Policy) -> tuple[datetime, datetime, Policy, Polic
     for name in ("start", "end", "policy"):
         if name not in values:
             raise RequestRejected([Issue("required", f"$backtest needs {name}", ("Parameters.parameter",))])
-    try:
-        start, end = parse_instant(values["start"][1], "start"), parse_instant(values["end"][1], "end")
-    except ValueError as exc:
-        raise RequestRejected([Issue("value", str(exc))]) from exc
-    if end <= start:
-        raise RequestRejected([Issue("value", "end must be after start (the range is [start, end))")])
-    if end - start > MAX_SPAN:
-        raise RequestRejected([Issue("too-costly", f"the range may span at most {MAX_SPAN.days} days")])
+    start, end = checked_range(values["start"][1], values["end"][1])
     candidate = _policy(*values["policy"], "policy")
     baseline = _policy(*values["baseline"], "baseline") if "baseline" in values else current
     return start, end, candidate, baseline

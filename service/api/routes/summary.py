@@ -59,6 +59,11 @@ def _range(start: str | None, end: str | None) -> tuple[datetime, datetime]:
     if not start or not end:
         raise RequestRejected([Issue("required", "$summary needs start and end, e.g. "
                                      "start=2026-03-01&end=2026-03-03 (end excluded)")])
+    return checked_range(start, end)
+
+
+def checked_range(start: str, end: str) -> tuple[datetime, datetime]:
+    """[start, end) of an informatics operation ($summary, $backtest): instants in order, at most MAX_SPAN."""
     try:
         low, high = parse_instant(start, "start"), parse_instant(end, "end")
     except ValueError as exc:
