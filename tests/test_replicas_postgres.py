@@ -48,6 +48,15 @@ OUTAGE_S = 20.0
 BOUND_S = 15.0  # the longest a high-priority Flag's page may wait once a replica could send it
 
 
+def stop(procs: list[subprocess.Popen[bytes]], receiver: CountingReceiver) -> None:
+    """Stop the service processes still running, then the receiver."""
+    for p in procs:
+        if p.poll() is None:
+            p.terminate()
+            p.wait(timeout=20)
+    receiver.down()
+
+
 @dataclass
 class Arrival:
     at: float  # time.monotonic() on arrival
@@ -198,11 +207,7 @@ def drill(postgres_url: str) -> Iterator[Drill]:
     try:
         yield Drill(postgres_url, receiver, ports, procs, {**HEADERS, "Authorization": f"Bearer {token}"})
     finally:
-        for p in procs:
-            if p.poll() is None:
-                p.terminate()
-                p.wait(timeout=20)
-        receiver.down()
+        stop(procs, receiver)
 
 
 @pytest.mark.timeout(300)
@@ -422,11 +427,7 @@ def run_feed(database_url: str, replicas: int, start: float, *, kill_midway: boo
                        acknowledged=acknowledged, readable=_readable(survivor, headers),
                        seconds=time.monotonic() - started, unanswered=client.unanswered)
     finally:
-        for p in procs:
-            if p.poll() is None:
-                p.terminate()
-                p.wait(timeout=20)
-        receiver.down()
+        stop(procs, receiver)
 
 
 @pytest.fixture(scope="module")
