@@ -171,7 +171,8 @@ def export(start: Start, end: End,
     """One CSV row per Flag first raised in [start, end): priority, sentence, value, acknowledgement, closing."""
     from sqlalchemy.exc import SQLAlchemyError
 
-    from service.db.summary import load_facts, patient_identifiers
+    from service.db.patients import patient_identifiers
+    from service.db.summary import load_facts
 
     low, high = _range(start, end)
     db, policy, settings = _store(database_url, data_dir)

@@ -6,7 +6,7 @@ with 5 Flags or 200 (bench/board_benchmark.py measures it).
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from datetime import datetime
 from typing import Any
 
@@ -15,10 +15,11 @@ from sqlalchemy import func, select, tuple_
 from sqlmodel import Session
 
 from service.board.views import AckFacts, FlagFacts, LatestValue
+from service.db.patients import patient_identifiers
 from service.db.tables import Escalation, FhirVersion, FlagAck, FlagRecord, ObservationRecord, PatientAlias
 from service.fhir.normalise import parse_datetime
 
-__all__ = ["active_flag_facts", "flag_facts", "patient_identifiers"]
+__all__ = ["active_flag_facts", "flag_facts"]
 
 _FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
 _ACK = FlagAck.__table__  # type: ignore[attr-defined]
@@ -41,27 +42,12 @@ def flag_facts(*, session: Session, flag_id: str) -> tuple[FlagFacts, str, list[
     return _facts(session, [row])[0], row.patient_key, orjson.loads(row.evidence), row.status
 
 
-def patient_identifiers(*, session: Session, patient_keys: Iterable[str]) -> dict[str, list[str]]:
-    """Every name the feed used for each patient: identifier values first (as sent), then references."""
-    keys = sorted(set(patient_keys))
-    found: dict[str, tuple[list[str], list[str]]] = {k: ([], []) for k in keys}
-    for i in range(0, len(keys), 500):
-        for alias, key in session.execute(select(_ALIAS.c.alias, _ALIAS.c.patient_key)
-                                          .where(_ALIAS.c.patient_key.in_(keys[i:i + 500]))
-                                          .order_by(_ALIAS.c.alias)):
-            kind, _, rest = alias.partition(":")
-            if kind == "id":
-                found[key][0].append(rest.rpartition("|")[2] if "|" in rest else rest)
-            else:
-                found[key][1].append(rest)
-    return {k: ids + refs for k, (ids, refs) in found.items()}
-
-
 def _facts(session: Session, rows: Sequence[Any]) -> list[FlagFacts]:
     if not rows:
         return []
     ids = [r.id for r in rows]
-    names = patient_identifiers(session=session, patient_keys=[r.patient_key for r in rows])
+    names = {key: [n.rpartition("|")[2] for n in found]  # an identifier shown by its value, as on a wristband
+             for key, found in patient_identifiers(session=session, patient_keys=[r.patient_key for r in rows]).items()}
     acks = _latest_acks(session, ids)
     escalations = dict(session.execute(select(_ESC.c.flag_id, func.count()).where(_ESC.c.flag_id.in_(ids))
                                        .group_by(_ESC.c.flag_id)).all())

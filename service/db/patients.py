@@ -12,7 +12,7 @@ from sqlmodel import Session
 
 from service.db.tables import PatientAlias
 
-__all__ = ["IdentityConflict", "resolve_patients"]
+__all__ = ["IdentityConflict", "patient_identifiers", "resolve_patients"]
 
 _ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
 
@@ -79,3 +79,16 @@ def _lookup(session: Session, aliases: set[str]) -> dict[str, str]:
         rows = session.execute(select(_ALIAS.c.alias, _ALIAS.c.patient_key).where(_ALIAS.c.alias.in_(chunk)))
         found.update({a: k for a, k in rows})
     return found
+
+
+def patient_identifiers(*, session: Session, patient_keys: Sequence[str]) -> dict[str, list[str]]:
+    """Every name the feeds used for each patient, as sent: identifiers ("system|value") first, then
+    literal references ("Patient/x"), each group sorted. A patient with no alias is absent."""
+    found: dict[str, list[str]] = {}
+    items = sorted(set(patient_keys))
+    for i in range(0, len(items), 500):
+        for alias, key in session.execute(select(_ALIAS.c.alias, _ALIAS.c.patient_key)
+                                          .where(_ALIAS.c.patient_key.in_(items[i:i + 500]))):
+            found.setdefault(key, []).append(str(alias))
+    # An alias is "id:<system>|<value>" or "ref:<reference>"; "id:" sorts before "ref:".
+    return {k: [a.split(":", 1)[1] for a in sorted(v)] for k, v in found.items()}

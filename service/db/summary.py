@@ -25,7 +25,6 @@ from service.db.tables import (
     FlagAck,
     FlagRecord,
     ObservationRecord,
-    PatientAlias,
     SubscriptionEvent,
 )
 from service.domain.coverage import unread_result
@@ -43,7 +42,7 @@ from service.summary import (
     SummaryFacts,
 )
 
-__all__ = ["audit_rows", "load_facts", "patient_identifiers"]
+__all__ = ["audit_rows", "load_facts"]
 
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
 _FLAG = FlagRecord.__table__  # type: ignore[attr-defined]
@@ -53,7 +52,6 @@ _E = SubscriptionEvent.__table__  # type: ignore[attr-defined]
 _A = DeliveryAttempt.__table__  # type: ignore[attr-defined]
 _AUDIT = AuditRecord.__table__  # type: ignore[attr-defined]
 _ACK = FlagAck.__table__  # type: ignore[attr-defined]
-_ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
 _PRIORITY = {"PH": "high", "PM": "medium", "PL": "low"}
 _CHUNK = 500  # keeps IN lists well inside every backend's parameter limit
 
@@ -252,13 +250,3 @@ def audit_rows(*, session: Session, start: datetime, end: datetime) -> list[tupl
                           if d["type"] == "dropped")
         out.append((str(rid), recorded, str(subtype), str(client), dropped))
     return out
-
-
-def patient_identifiers(*, session: Session, patient_keys: Sequence[str]) -> dict[str, list[str]]:
-    """Each patient's references and identifiers as the feeds sent them ("Patient/x", "system|value")."""
-    out: dict[str, list[str]] = {}
-    for keys in _chunks(sorted(set(patient_keys))):
-        for alias, key in session.execute(select(_ALIAS.c.alias, _ALIAS.c.patient_key)
-                                          .where(_ALIAS.c.patient_key.in_(list(keys)))):
-            out.setdefault(key, []).append(str(alias).split(":", 1)[-1])
-    return {k: sorted(v) for k, v in out.items()}
