@@ -6,7 +6,7 @@ from __future__ import annotations
 import tempfile
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 from sqlalchemy import func, select
@@ -34,6 +34,9 @@ def backtest_command(
     html: Annotated[bool, typer.Option(help="also write report.html with plots (one file, works offline)")]
     = True,
     workers: Annotated[int, typer.Option(min=1, max=64, help="worker processes (one per core)")] = 1,
+    with_identifiers: Annotated[bool, typer.Option(
+        "--with-identifiers", help="add the names the feeds sent for each patient to flags.csv and gained_lost.csv "
+                                   "(from the store: recorded as a disclosure AuditEvent per patient)")] = False,
     tick_minutes: Annotated[float, typer.Option(min=1, help="recheck interval while insulin is recorded")] = 15,
     database_url: Annotated[str | None, typer.Option(help="SQLAlchemy URL (default: SQLite in the data dir)")]
     = None,
@@ -72,7 +75,9 @@ def backtest_command(
                        lookback=timedelta(hours=settings.lookback_hours), tick=timedelta(minutes=tick_minutes),
                        workers=workers)
         comparison = run_backtest(job)
-    written = write_all(comparison, out)
+        identifiers = _identifiers(url, comparison, disclose=feed is None, settings=settings) \
+            if with_identifiers else None
+    written = write_all(comparison, out, identifiers)
     if html:
         from service.backtest.report import write_report
 
@@ -84,6 +89,43 @@ def backtest_command(
                f"{sum(d.change == 'lost' for d in comparison.differences)} lost)")
     for path in written:
         typer.echo(f"wrote {path}", err=True)
+
+
+def _identifiers(url: str, comparison: Any, *, disclose: bool, settings: Any) -> dict[str, list[str]]:
+    """The names the feeds sent for each patient the tables name. Read from the store they are a
+    disclosure, recorded (one AuditEvent per patient) before anything is written; read from a feed the
+    analyst supplied, they only repeat that file."""
+    import uuid
+    from datetime import UTC
+
+    from service.backtest.output import patients_named
+    from service.db.audit import record_audit
+    from service.db.engine import Database
+    from service.db.patients import patient_identifiers
+    from service.fhir.audit_render import AuditFacts, Requester
+
+    db = Database(url)
+    try:
+        keys = patients_named(comparison)
+        with db.session() as session:
+            names = patient_identifiers(session=session, patient_keys=keys)
+        if disclose and names:
+            who = Requester(client="command-line backtest", address=None, request_id=str(uuid.uuid4()))
+            now = datetime.now(UTC)
+            events = []
+            for key in keys:
+                first = (names.get(key) or [""])[0]
+                if not first:
+                    continue
+                patient = ({"identifier": {"system": first.split("|", 1)[0], "value": first.split("|", 1)[1]}}
+                           if "|" in first else {"reference": first})
+                events.append((AuditFacts(subtype="disclose", recorded=now, requester=who, patient=patient,
+                                          details={"export": "backtest CSV with patient identifiers"}), key))
+            with db.session(write=True) as session:
+                record_audit(session=session, events=events, base_url=settings.base_url)
+    finally:
+        db.dispose()
+    return names
 
 
 def _span(url: str, low: datetime | None, high: datetime | None) -> tuple[datetime, datetime]:

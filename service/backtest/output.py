@@ -1,7 +1,8 @@
 """A backtest written out: one CSV per table and a JSON summary (the HTML report is report.py).
 
 Priorities are FHIR flag-priority codes with their display; times are UTC instants; durations in seconds.
-Patients are named by the store's internal patient key (no identifiers leave the store here).
+Patients are named by the store's internal patient key; with ``identifiers`` (the CLI's
+``--with-identifiers``, recorded as a disclosure) the names the feeds sent are added beside it.
 """
 
 from __future__ import annotations
@@ -18,8 +19,8 @@ from service.backtest.engine import SimFlag
 from service.fhir.render import CAUTION, fhir_instant
 from service.vocabulary import PRIORITY_DISPLAY, priority_code
 
-__all__ = ["ASSUMPTIONS", "by_rule_csv", "differences_csv", "flags_csv", "per_day_csv", "summary_json",
-           "write_all"]
+__all__ = ["ASSUMPTIONS", "by_rule_csv", "differences_csv", "flags_csv", "patients_named", "per_day_csv",
+           "summary_json", "write_all"]
 
 ASSUMPTIONS = (
     "Escalations are counted as if no Flag was ever acknowledged.",
@@ -76,18 +77,33 @@ def _flag_cells(name: str, f: SimFlag, start: Any, end: Any) -> list[object]:
             f.escalations, f.sentence]
 
 
-def flags_csv(c: Comparison) -> str:
-    return _csv(FLAG_COLUMNS, [_flag_cells(p.name, f, c.start, c.end)
-                               for p in (c.baseline, c.candidate) for f in p.flags])
+def _named(columns: tuple[str, ...], rows: list[list[object]], patients: list[str],
+           identifiers: dict[str, list[str]] | None) -> str:
+    if identifiers is None:
+        return _csv(columns, rows)
+    return _csv((*columns, "patient_identifiers"),
+                [[*row, "; ".join(identifiers.get(key, []))] for row, key in zip(rows, patients, strict=True)])
 
 
-def differences_csv(c: Comparison) -> str:
+def flags_csv(c: Comparison, identifiers: dict[str, list[str]] | None = None) -> str:
+    flags = [(p.name, f) for p in (c.baseline, c.candidate) for f in p.flags]
+    return _named(FLAG_COLUMNS, [_flag_cells(name, f, c.start, c.end) for name, f in flags],
+                  [f.patient for _, f in flags], identifiers)
+
+
+def differences_csv(c: Comparison, identifiers: dict[str, list[str]] | None = None) -> str:
     rows: list[list[object]] = []
     for d in c.differences:
         code = priority_code(d.flag.raised_priority)
         rows.append([d.change, d.flag.patient, d.flag.rule, code, PRIORITY_DISPLAY[code],
                      fhir_instant(d.flag.raised_at), d.flag.sentence])
-    return _csv(DIFFERENCE_COLUMNS, rows)
+    return _named(DIFFERENCE_COLUMNS, rows, [d.flag.patient for d in c.differences], identifiers)
+
+
+def patients_named(c: Comparison) -> list[str]:
+    """The patient keys the Flag tables name."""
+    return sorted({f.patient for p in (c.baseline, c.candidate) for f in p.flags}
+                  | {d.flag.patient for d in c.differences})
 
 
 def per_day_csv(c: Comparison) -> str:
@@ -121,10 +137,11 @@ def summary_json(c: Comparison) -> dict[str, Any]:
     }
 
 
-def write_all(c: Comparison, out: Path) -> list[Path]:
+def write_all(c: Comparison, out: Path, identifiers: dict[str, list[str]] | None = None) -> list[Path]:
     """Every table and the JSON summary into directory ``out``; returns the files written."""
     out.mkdir(parents=True, exist_ok=True)
-    files = {"by_rule.csv": by_rule_csv(c), "flags.csv": flags_csv(c), "gained_lost.csv": differences_csv(c),
+    files = {"by_rule.csv": by_rule_csv(c), "flags.csv": flags_csv(c, identifiers),
+             "gained_lost.csv": differences_csv(c, identifiers),
              "per_day.csv": per_day_csv(c),
              "summary.json": orjson.dumps(summary_json(c), option=orjson.OPT_INDENT_2).decode() + "\n"}
     written = []
