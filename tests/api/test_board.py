@@ -256,6 +256,14 @@ def test_a_board_refreshing_audits_each_flag_version_once_per_session(context: A
     assert len(shown) == 1
 
 
+def test_an_empty_board_refreshing_is_audited_once_not_at_every_refresh(context: AppContext) -> None:
+    c = signed_in(context)
+    for _ in range(4):
+        c.get("/board/rows")
+    mine = [e for e in audit_events(context) if e["agent"][0]["who"]["identifier"]["value"] == "ward-tablet"]  # type: ignore[index]
+    assert len(mine) == 1
+
+
 def test_every_page_carries_a_strict_content_security_policy(context: AppContext) -> None:
     r = browser(context).get("/board/login")
     policy = r.headers["content-security-policy"]

@@ -251,9 +251,11 @@ def _rows_seen(ctx: AppContext, request: Request, session: BoardSession, query: 
     """The board's rows and their digest; Flags this session has not been shown yet are audited."""
     with ctx.db.session() as s:
         facts = active_flag_facts(session=s)
-        seen = _AUDITED.unseen(_session_key(request), [(f.id, f.version_id) for f in facts])
-        served = read_references(session=s, references=[f"Flag/{fid}/_history/{v}" for fid, v in seen])
-    if seen or not facts:
+        # ("", 0) stands for the empty board: a query that returned nothing, audited once per session too.
+        shown = [(f.id, f.version_id) for f in facts] or [("", 0)]
+        new = _AUDITED.unseen(_session_key(request), shown)
+        served = read_references(session=s, references=[f"Flag/{fid}/_history/{v}" for fid, v in new if fid])
+    if new:
         audit_patient_access(ctx, _requester(request, session), served, subtype="search-type", query=query)
     rows = board_rows(facts, ctx.clock.now(), _zone(ctx))
     digest = hashlib.sha256(orjson.dumps([(r.id, r.version_id, r.ack, r.escalations, r.raised_ago)
@@ -308,7 +310,7 @@ def _local_path(target: str) -> str:
     return target
 
 
-def install_board(app: Any, templates_dir: Path | None = None) -> None:
+def install_board(app: Any) -> None:
     """Exception handlers of the board: not logged in → the login page; a bad CSRF token → 403."""
 
     async def _to_login(request: Request, exc: Exception) -> Response:
