@@ -94,7 +94,8 @@ class Settings(BaseSettings):
     # The board (service/board): a login lasts a shift at most; the open page asks for changes this often.
     board_session_secret: SecretStr | None = Field(
         default=None, description="key that signs board session cookies; give every replica the same one "
-                                  "(default: a random key per process, so board logins end when it restarts)")
+                                  "(default: a random key kept in data_dir/board-session.key, shared by the "
+                                  "workers and restarts of one machine)")
     board_session_hours: float = Field(default=8.0, gt=0, le=24, description="how long a board login lasts")
     board_refresh_seconds: float = Field(default=5.0, ge=1, description="how often an open board asks for changes")
 

@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import logging
+import os
 import random
+import secrets
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from datetime import timedelta
@@ -75,6 +77,27 @@ def app_from_environment() -> FastAPI:
     return create_app(context=build_context(Settings(), migrate=False))
 
 
+def _board_key(settings: Settings) -> bytes:
+    """The key that signs board sessions: from the setting; else one kept in the data directory, so every
+    worker and restart on this machine shares it; else (no writable data directory) one for this process."""
+    secret = settings.board_session_secret
+    if secret is not None:
+        return derive_key(secret.get_secret_value())
+    path = settings.data_dir / "board-session.key"
+    try:
+        settings.data_dir.mkdir(parents=True, exist_ok=True)
+        try:
+            with os.fdopen(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600), "w") as f:
+                f.write(secrets.token_hex(32))
+        except FileExistsError:
+            pass  # made by another worker or an earlier start
+        return derive_key(path.read_text().strip())
+    except OSError as exc:
+        log.warning("board sessions: no key file in the data directory (%s); sessions last this process only; "
+                    "set LYTESTREAM_BOARD_SESSION_SECRET", type(exc).__name__)
+        return derive_key(None)
+
+
 def create_app(settings: Settings | None = None, *, context: AppContext | None = None) -> FastAPI:
     ctx = context or build_context(settings or Settings())
     @asynccontextmanager
@@ -109,8 +132,7 @@ def create_app(settings: Settings | None = None, *, context: AppContext | None =
     app.include_router(subscriptions.router)
     app.include_router(read.router)
     # The board: its pages, its own static files (vendored, so no CDN is ever asked), its session key.
-    secret = ctx.settings.board_session_secret
-    app.state.board_key = derive_key(secret.get_secret_value() if secret else None)
+    app.state.board_key = _board_key(ctx.settings)
     app.include_router(board.router)
     app.mount("/board/static", StaticFiles(directory=BOARD_STATIC), name="board-static")
     board.install_board(app)

@@ -140,10 +140,20 @@ def test_an_altered_cookie_is_no_session(context: AppContext) -> None:
 
 
 def test_a_cookie_signed_by_another_deployment_is_no_session(context: AppContext) -> None:
+    from service.board.session import derive_key, open_cookie, seal_cookie
+
     value = signed_in(context).cookies[COOKIE_NAME]
-    other = browser(context)  # a new app: a new random key, as another deployment would have
-    other.cookies.set(COOKIE_NAME, value, path="/board")
+    session = open_cookie(value, create_app(context=context).state.board_key, context.clock.now())
+    other = browser(context)
+    other.cookies.set(COOKIE_NAME, seal_cookie(session, derive_key("another deployment's secret")), path="/board")
     assert other.get("/board").status_code == 303
+
+
+def test_every_worker_on_one_machine_accepts_the_same_session(context: AppContext) -> None:
+    value = signed_in(context).cookies[COOKIE_NAME]
+    another_worker = browser(context)  # a second app on the same data directory, as a second worker is
+    another_worker.cookies.set(COOKIE_NAME, value, path="/board")
+    assert another_worker.get("/board").status_code == 200
 
 
 def test_revoking_the_token_ends_the_board_sessions_it_opened(context: AppContext) -> None:
