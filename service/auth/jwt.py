@@ -16,7 +16,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import UTC, datetime
 from typing import Any, TypeGuard
 
 import httpx
@@ -241,8 +241,10 @@ def _principal(claims: dict[str, Any]) -> Principal:
     if client is None:
         raise token_invalid("the token names no client (client_id or sub)")
     parsed = parse_scopes(scope_string)
+    exp = claims.get("exp")  # checked to be a number by _check_claims
     return Principal(client_id=client, grants=parsed.grants, kind="jwt", subject=sub if sub != client else None,
-                     admin=parsed.admin)
+                     admin=parsed.admin,
+                     expires=datetime.fromtimestamp(exp, UTC) if _is_number(exp) else None)
 
 
 def _is_number(value: object) -> TypeGuard[int | float]:

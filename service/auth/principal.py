@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from datetime import datetime
 from typing import Literal
 
 from service.auth.scopes import Grant, allows
@@ -22,6 +23,7 @@ class Principal:
     token_id: int | None = None  # ApiToken.id for minted tokens
     subject: str | None = None  # JWT ``sub`` when it differs from the client
     admin: bool = False  # holds lytestream/admin: may act on other clients' Subscriptions
+    expires: datetime | None = None  # a JWT's exp: nothing this caller proved outlives it (board sessions)
 
     def allows(self, resource_type: str, interaction: str) -> bool:
         return allows(self.grants, resource_type, interaction)

@@ -46,8 +46,11 @@ class BoardSession:
 
 
 def new_session(principal: Principal, person: str, now: datetime, hours: float) -> BoardSession:
-    return BoardSession(principal=principal, person=person, csrf=secrets.token_urlsafe(24),
-                        expires=now + timedelta(hours=hours))
+    """A session of ``hours``, or less: never longer than the token that opened it (a JWT's exp)."""
+    expires = now + timedelta(hours=hours)
+    if principal.expires is not None:
+        expires = min(expires, principal.expires)
+    return BoardSession(principal=principal, person=person, csrf=secrets.token_urlsafe(24), expires=expires)
 
 
 def seal_cookie(session: BoardSession, key: bytes) -> str:

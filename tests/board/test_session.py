@@ -63,3 +63,13 @@ def test_the_csrf_check_accepts_only_the_sessions_own_token() -> None:
     session = new_session(PRINCIPAL, "Nurse A", NOW, hours=8)
     assert session.csrf_ok(session.csrf)
     assert not session.csrf_ok(None) and not session.csrf_ok("") and not session.csrf_ok(session.csrf + "x")
+
+
+def test_a_session_never_outlives_the_jwt_that_opened_it() -> None:
+    from dataclasses import replace
+
+    short = replace(PRINCIPAL, kind="jwt", token_id=None, expires=NOW + timedelta(minutes=5))
+    session = new_session(short, "Nurse A", NOW, hours=8)
+    assert session.expires == NOW + timedelta(minutes=5)
+    with pytest.raises(SessionInvalid, match="expired"):
+        open_cookie(seal_cookie(session, KEY), KEY, NOW + timedelta(minutes=6))

@@ -120,7 +120,8 @@ async def login(request: Request, ctx: ContextDep, token: Annotated[str, Form()]
                      f"Give your name as the team knows you (1–{_MAX_NAME} characters): it is shown on "
                      "every acknowledgement you make."}, 400)
     try:
-        principal = request.app.state.authenticator.authenticate(f"Bearer {token.strip()}")
+        # As the API's check: a store lookup, or a JWT's keys fetched from the issuer; off the event loop.
+        principal = await run_in_threadpool(request.app.state.authenticator.authenticate, f"Bearer {token.strip()}")
         request.state.principal = principal
         if not (principal.allows("Flag", "r") and principal.allows("Flag", "s")):
             raise forbidden(needed_scope("Flag", "rs"))
@@ -134,7 +135,8 @@ async def login(request: Request, ctx: ContextDep, token: Annotated[str, Form()]
     log.info("board login: client=%s request=%s", principal.client_id, request_id(request))
     response = RedirectResponse(target, status_code=303)
     response.set_cookie(COOKIE_NAME, seal_cookie(session, request.app.state.board_key), path="/board",
-                        max_age=int(ctx.settings.board_session_hours * 3600), httponly=True, samesite="strict",
+                        max_age=max(int((session.expires - ctx.clock.now()).total_seconds()), 0), httponly=True,
+                        samesite="strict",
                         secure=urlsplit(ctx.settings.base_url).scheme == "https")
     return response
 
