@@ -117,7 +117,8 @@ def _identifiers(url: str, comparison: Any, *, disclose: bool, settings: Any) ->
                 first = (names.get(key) or [""])[0]
                 if not first:
                     continue
-                patient = ({"identifier": {"system": first.split("|", 1)[0], "value": first.split("|", 1)[1]}}
+                system, _, value = first.partition("|")
+                patient = ({"identifier": {"system": system, "value": value} if system else {"value": value}}
                            if "|" in first else {"reference": first})
                 events.append((AuditFacts(subtype="disclose", recorded=now, requester=who, patient=patient,
                                           details={"export": "backtest CSV with patient identifiers"}), key))

@@ -16,7 +16,7 @@ from sqlmodel import Session
 
 from service.board.views import AckFacts, FlagFacts, LatestValue
 from service.db.patients import patient_identifiers
-from service.db.tables import Escalation, FhirVersion, FlagAck, FlagRecord, ObservationRecord, PatientAlias
+from service.db.tables import Escalation, FhirVersion, FlagAck, FlagRecord, ObservationRecord
 from service.fhir.normalise import parse_datetime
 
 __all__ = ["active_flag_facts", "flag_facts"]
@@ -26,7 +26,6 @@ _ACK = FlagAck.__table__  # type: ignore[attr-defined]
 _ESC = Escalation.__table__  # type: ignore[attr-defined]
 _V = FhirVersion.__table__  # type: ignore[attr-defined]
 _OBS = ObservationRecord.__table__  # type: ignore[attr-defined]
-_ALIAS = PatientAlias.__table__  # type: ignore[attr-defined]
 
 
 def active_flag_facts(*, session: Session) -> list[FlagFacts]:
