@@ -12,7 +12,8 @@ from collections.abc import Mapping, Sequence
 from datetime import datetime, timedelta
 from typing import Any
 
-from service.domain.derived import corrected_sodium, pair_nearest
+from service.domain.derived import judged_corrected_sodium
+from service.domain.rules.series import LAB_BLOOD
 from service.domain.values import Analyte, LabResult, Specimen, Timeline
 from service.policy.model import Policy
 
@@ -56,17 +57,13 @@ def trajectory(timeline: Timeline, policy: Policy, evidence: Sequence[str], susp
 
 
 def _corrected(timeline: Timeline, policy: Policy) -> dict[str, float]:
-    """Glucose-corrected sodium for each sodium whose paired glucose is at or above the policy's
-    threshold: the value the sodium rules judge instead of the measured one."""
-    glucose = [g for g in timeline.of(Analyte.GLUCOSE, *policy.crisis.glucose_specimens)]
-    window = timedelta(minutes=policy.derived.pairing_minutes)
+    """Glucose-corrected sodium where the sodium rules judge it in place of the measured one."""
+    glucose = timeline.of(Analyte.GLUCOSE, *LAB_BLOOD)
     out: dict[str, float] = {}
     for na in timeline.of(Analyte.SODIUM):
-        if na.value is None:
-            continue
-        paired = pair_nearest(na, glucose, window)
-        if paired is not None and paired.value is not None and paired.value >= policy.derived.corrected_sodium_from_glucose:
-            out[na.reference] = corrected_sodium(na.value, paired.value, policy.derived.sodium_glucose_factor)
+        judged = judged_corrected_sodium(na, glucose, policy) if na.comparator is None else None
+        if judged is not None:
+            out[na.reference] = judged[0]
     return out
 
 

@@ -5,16 +5,21 @@ All inputs in canonical units (mmol/L; osmolality mOsm/kg). Pure arithmetic, no 
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from datetime import datetime, timedelta
+from typing import TYPE_CHECKING
 
 from service.domain.values import LabResult
+
+if TYPE_CHECKING:
+    from service.policy.model import Policy
 
 __all__ = [
     "GLUCOSE_MOLAR_MASS",
     "REFERENCE_GLUCOSE_MMOL",
     "calculated_osmolality",
     "corrected_sodium",
+    "judged_corrected_sodium",
     "effective_osmolality",
     "pair_nearest",
 ]
@@ -70,3 +75,16 @@ def pair_nearest(
         if gap <= window and (best_key is None or key < best_key):
             best, best_key = candidate, key
     return best
+
+
+def judged_corrected_sodium(
+    sodium: LabResult, lab_glucose: Sequence[LabResult], policy: Policy
+) -> tuple[float, LabResult] | None:
+    """The glucose-corrected sodium the sodium rules judge in place of the measured one, with the glucose
+    it rests on: the laboratory glucose drawn nearest ``sodium`` within the pairing window, when that
+    glucose is at or above the policy's threshold. None when the measured sodium stands."""
+    glucose = pair_nearest(sodium, lab_glucose, timedelta(minutes=policy.derived.pairing_minutes))
+    if (sodium.value is None or glucose is None or glucose.value is None
+            or glucose.value < policy.derived.corrected_sodium_from_glucose):
+        return None
+    return corrected_sodium(sodium.value, glucose.value, policy.derived.sodium_glucose_factor), glucose

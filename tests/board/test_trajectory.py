@@ -51,6 +51,15 @@ def test_sodium_with_glucose_below_the_policys_threshold_is_not_corrected() -> N
     assert panel(chart, "sodium")["corrected"] == []
 
 
+def test_a_meter_glucose_does_not_correct_the_charted_sodium() -> None:
+    # The sodium rules pair sodium with laboratory glucose only (service/domain/rules/series.py LAB_BLOOD);
+    # the chart shows the sodium they judged, so a point-of-care glucose corrects nothing there either.
+    chart = trajectory(timeline(result("na", Analyte.SODIUM, 125, 2),
+                                result("glu", Analyte.GLUCOSE, 600 / MG_DL_PER_MMOL_L_GLUCOSE, 2,
+                                       Specimen.POINT_OF_CARE)), POLICY, [], {})
+    assert panel(chart, "sodium")["corrected"] == []
+
+
 def test_the_policys_dangerous_levels_are_the_bands() -> None:
     bands = panel(trajectory(timeline(), POLICY, [], {}), "sodium")["bands"]
     assert [(b["from"], b["to"]) for b in bands] == [(None, 120), (160, None)]  # type: ignore[index]

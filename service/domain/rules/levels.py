@@ -11,9 +11,8 @@ osmolality) are not measurements and are left out. Decision support only.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from datetime import timedelta
 
-from service.domain.derived import corrected_sodium, pair_nearest
+from service.domain.derived import judged_corrected_sodium
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.rules.series import (
     LAB_BLOOD,
@@ -105,22 +104,14 @@ def _side(
     numbers = {"value": result.value or 0.0, "limit": bound}
     evidence = [result.reference]
     if analyte is Analyte.SODIUM and result.value is not None:
-        glucose = pair_nearest(
-            result,
-            [r for r in results if r.analyte is Analyte.GLUCOSE and r.specimen in LAB_BLOOD],
-            timedelta(minutes=policy.derived.pairing_minutes),
-        )
-        if glucose is not None and glucose.value is not None:
-            if glucose.value >= policy.derived.corrected_sodium_from_glucose:
-                corrected = corrected_sodium(
-                    result.value, glucose.value, policy.derived.sodium_glucose_factor
-                )
-                sentence += (
-                    f"; glucose-corrected sodium {fmt(corrected)} mmol/L "
-                    f"with glucose {shown(glucose)}"
-                )
-                numbers |= {"corrected_sodium": corrected, "glucose": glucose.value}
-                evidence.append(glucose.reference)
+        judged = judged_corrected_sodium(
+            result, [r for r in results if r.analyte is Analyte.GLUCOSE and r.specimen in LAB_BLOOD], policy)
+        if judged is not None:
+            corrected, glucose = judged
+            assert glucose.value is not None  # a paired glucose always has one
+            sentence += f"; glucose-corrected sodium {fmt(corrected)} mmol/L with glucose {shown(glucose)}"
+            numbers |= {"corrected_sodium": corrected, "glucose": glucose.value}
+            evidence.append(glucose.reference)
     if result.specimen is Specimen.POINT_OF_CARE:
         sentence += "; confirm with a laboratory sample"
     return Finding.of(

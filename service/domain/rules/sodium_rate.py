@@ -41,7 +41,7 @@ from dataclasses import dataclass
 from datetime import timedelta
 
 from service.domain.crisis import crisis_at
-from service.domain.derived import corrected_sodium, pair_nearest
+from service.domain.derived import judged_corrected_sodium, pair_nearest
 from service.domain.findings import Finding, Priority, Rule
 from service.domain.rules.series import LAB_BLOOD, Verdict, below, exact, fmt, hours, trailing_run_start
 from service.domain.values import Analyte, InsulinExposure, LabResult, Method, Specimen
@@ -188,13 +188,11 @@ def _points(results: Sequence[LabResult], policy: Policy) -> list[_Point]:
     points = []
     for na in exact(r for r in results if r.analyte is Analyte.SODIUM and r.specimen in policy.sodium.specimens):
         assert na.value is not None
-        glu = pair_nearest(na, glucose, window) if high_glucose else None
-        corrected = glu is not None and glu.value is not None and glu.value >= threshold
-        value = corrected_sodium(na.value, glu.value, policy.derived.sodium_glucose_factor) if (
-            corrected and glu is not None and glu.value is not None) else na.value
+        judged = judged_corrected_sodium(na, glucose, policy) if high_glucose else None
+        value, glu = judged if judged is not None else (na.value, None)
         osm = pair_nearest(na, osmolality, window) if osmolality and value < policy.sodium.rise.applies_below else None
         hypertonic = osm is not None and osm.value is not None and osm.value >= stand_down
-        points.append(_Point(na, value, glu if corrected else None, na.method, hypertonic))
+        points.append(_Point(na, value, glu, na.method, hypertonic))
     return points
 
 
