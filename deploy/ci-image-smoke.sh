@@ -19,7 +19,7 @@ cd "$(dirname "$0")/.."
 BASE_IMAGE=lytestream-base:local
 IMAGE=lytestream:ci-smoke
 NAME=lytestream-ci-smoke
-STATE=${LYTESTREAM_SMOKE_STATE:-/var/tmp/lytestream-ci-docker}
+STATE=${LYTESTREAM_SMOKE_STATE:-${XDG_CACHE_HOME:-$HOME/.cache}/lytestream/ci-docker}
 PY=${PYTHON:-$( [ -x .venv/bin/python ] && echo .venv/bin/python || echo python3 )}
 started=$(date +%s)
 DOCKERD_PID=""

@@ -17,6 +17,7 @@ from sqlmodel import Session
 from service.board.views import AckFacts, FlagFacts, LatestValue
 from service.db.patients import patient_identifiers
 from service.db.tables import Escalation, FhirVersion, FlagAck, FlagRecord, ObservationRecord
+from service.domain.findings import Rule
 from service.fhir.normalise import parse_datetime
 
 __all__ = ["active_flag_facts", "flag_facts"]
@@ -50,7 +51,6 @@ def _facts(session: Session, rows: Sequence[Any]) -> list[FlagFacts]:
     acks = _latest_acks(session, ids)
     escalations = dict(session.execute(select(_ESC.c.flag_id, func.count()).where(_ESC.c.flag_id.in_(ids))
                                        .group_by(_ESC.c.flag_id)).all())
-    displays = _rule_displays(session, [(r.id, r.version_id) for r in rows])
     evidence = {r.id: orjson.loads(r.evidence) for r in rows}
     latest = _latest_values(session, evidence)
     facts = []
@@ -58,7 +58,7 @@ def _facts(session: Session, rows: Sequence[Any]) -> list[FlagFacts]:
         ack = acks.get(r.id)
         facts.append(FlagFacts(
             id=r.id, version_id=r.version_id, rule=r.rule,
-            rule_display=displays.get(r.id) or r.rule.replace("-", " ").capitalize(),
+            rule_display=Rule(r.rule).display,  # as the Flag's coding carries it
             priority=r.priority, sentence=r.sentence, raised_at=r.raised_at,
             identifiers=names.get(r.patient_key, []), encounter=r.encounter,
             latest=latest.get(r.id),
@@ -76,18 +76,6 @@ def _latest_acks(session: Session, flag_ids: list[str]) -> dict[str, tuple[str, 
             .where(_ACK.c.flag_id.in_(flag_ids)).order_by(_ACK.c.acknowledged_at, _ACK.c.id)):
         newest[fid] = (f"{person} ({client})" if person else client, at, note)
     return newest
-
-
-def _rule_displays(session: Session, versions: list[tuple[str, int]]) -> dict[str, str]:
-    """The rule's display as the Flag version carries it (code.coding[0].display), where it has one."""
-    out: dict[str, str] = {}
-    for fid, resource in session.execute(
-            select(_V.c.id, _V.c.resource).where(_V.c.resource_type == "Flag",
-                                                 tuple_(_V.c.id, _V.c.version_id).in_(versions))):
-        coding = (orjson.loads(resource).get("code") or {}).get("coding") or [{}]
-        if coding[0].get("display"):
-            out[fid] = coding[0]["display"]
-    return out
 
 
 def _latest_values(session: Session, evidence: dict[str, list[str]]) -> dict[str, LatestValue]:

@@ -35,16 +35,21 @@ class Fault:
     diagnostics: str = ""  # a word the message must carry
 
 
-def obs(**changes: Any) -> Callable[[], dict[str, Any]]:
+def changed(make: Callable[[], dict[str, Any]], **changes: Any) -> Callable[[], dict[str, Any]]:
+    """A builder of ``make()`` with elements replaced, or removed where the value is MISSING."""
     def build() -> dict[str, Any]:
-        o = observation("fp-1")
+        resource = make()
         for key, value in changes.items():
             if value is MISSING:
-                o.pop(key, None)
+                resource.pop(key, None)
             else:
-                o[key] = value
-        return o
+                resource[key] = value
+        return resource
     return build
+
+
+def obs(**changes: Any) -> Callable[[], dict[str, Any]]:
+    return changed(lambda: observation("fp-1"), **changes)
 
 
 def quantity(**q: Any) -> dict[str, Any]:
@@ -71,15 +76,7 @@ def set_at(*keys: Any, value: Any) -> Callable[[dict[str, Any]], None]:
 
 
 def administration(**changes: Any) -> Callable[[], dict[str, Any]]:
-    def build() -> dict[str, Any]:
-        m = insulin("fp-m")
-        for key, value in changes.items():
-            if value is MISSING:
-                m.pop(key, None)
-            else:
-                m[key] = value
-        return m
-    return build
+    return changed(lambda: insulin("fp-m"), **changes)
 
 
 O, M = "/fhir/Observation", "/fhir/MedicationAdministration"

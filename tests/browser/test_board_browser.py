@@ -63,6 +63,10 @@ def active_flags(server: DemoServer) -> list[dict[str, Any]]:
     return [e["resource"] for e in r.json().get("entry", []) if e.get("search", {}).get("mode") == "match"]
 
 
+def flag_of_rule(server: DemoServer, rule: str) -> dict[str, Any]:
+    return next(f for f in active_flags(server) if f["code"]["coding"][0]["code"] == rule)
+
+
 def severe_console_entries(browser: Any) -> list[dict[str, Any]]:
     return [e for e in browser.get_log("browser") if e.get("level") == "SEVERE"]
 
@@ -141,7 +145,7 @@ def test_acknowledging_with_a_note_shows_who_when_and_the_note(browser: Any, dem
 
 
 def test_trajectory_draws_bands_evidence_and_the_rate(browser: Any, demo_server: DemoServer) -> None:
-    flag = next(f for f in active_flags(demo_server) if f["code"]["coding"][0]["code"] == "sodium-rise-too-fast")
+    flag = flag_of_rule(demo_server, "sodium-rise-too-fast")
     sign_in(browser, demo_server)
     open_trajectory(browser, demo_server, flag["id"])
     sodium = browser.execute_script(
@@ -160,7 +164,7 @@ def test_trajectory_draws_bands_evidence_and_the_rate(browser: Any, demo_server:
 
 
 def test_trajectory_shades_insulin_therapy(browser: Any, demo_server: DemoServer) -> None:
-    flag = next(f for f in active_flags(demo_server) if f["code"]["coding"][0]["code"] == "hypokalemia-on-insulin")
+    flag = flag_of_rule(demo_server, "hypokalemia-on-insulin")
     sign_in(browser, demo_server)
     open_trajectory(browser, demo_server, flag["id"])
     labels = browser.execute_script(
