@@ -5,6 +5,9 @@ UCUM §2.6 (annotations): "{rbc}" alone is a valid UCUM unit of one (UCUM functi
 2951-2 is "Sodium [Moles/volume] in Serum or Plasma" (LOINC).
 """
 
+# Sodium 140 mmol/L is an ordinary value inside the reference interval (common practice): these tests
+# are about the unit, not the level.
+
 from __future__ import annotations
 
 import pytest

@@ -1,6 +1,9 @@
 """One log line per request: request id (the sender's, echoed back, or a new one), the route template
 (never the raw path or query, which can carry an identifier), status, duration, client, ingest counts."""
 
+# Sodium 140 mmol/L is inside the reference interval (common practice): the log lines, not the rules,
+# are under test.
+
 from __future__ import annotations
 
 import logging
